@@ -1,0 +1,131 @@
+"""Sample a fleet of devices from its device types and regions, as a struct of arrays.
+
+Random streams: every component draws from its own named ``numpy.random.Generator``
+derived from the run seed (:func:`stream`), so the fleet a seed gives does not depend on the
+round settings, the policy or the horizon (common random numbers across a study's cells).
+"""
+
+from __future__ import annotations
+
+import zlib
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .config import Config, Trait
+
+__all__ = ["Fleet", "sample_fleet", "stream"]
+
+
+def stream(seed: int, name: str) -> np.random.Generator:
+    """The run's random stream called ``name``: independent of every other name."""
+    return np.random.default_rng(np.random.SeedSequence(entropy=seed, spawn_key=(zlib.crc32(name.encode()),)))
+
+
+@dataclass(frozen=True)
+class Fleet:
+    """Every device's static traits; index ``i`` is device ``i`` in every array.
+
+    Units are in the names: seconds (``_s``), bytes, watts (``_w``), watt-hours (``_wh``),
+    Mbit/s (``_mbps``).
+    """
+
+    type_names: tuple[str, ...]
+    region_names: tuple[str, ...]
+    device_type: np.ndarray  # int16 index into type_names
+    region: np.ndarray  # int16 index into region_names
+    sample_cost_s: np.ndarray
+    memory_bytes: np.ndarray
+    battery_wh: np.ndarray
+    train_power_w: np.ndarray
+    radio_power_w: np.ndarray
+    charge_power_w: np.ndarray
+    down_mbps: np.ndarray
+    up_mbps: np.ndarray
+    samples: np.ndarray  # int32, at least 1
+    checkin_phase_s: np.ndarray  # offset of the device's check-in ticks in [0, checkin_every)
+
+    @property
+    def size(self) -> int:
+        return int(self.device_type.size)
+
+    @property
+    def group(self) -> np.ndarray:
+        """Index of each device's (device type, region) pair: type * regions + region."""
+        return self.device_type.astype(np.int32) * len(self.region_names) + self.region
+
+    def frame(self) -> pd.DataFrame:
+        """The fleet as a DataFrame, one row per device (categorical type and region)."""
+        return pd.DataFrame(
+            {
+                "device_type": pd.Categorical.from_codes(self.device_type, self.type_names),
+                "region": pd.Categorical.from_codes(self.region, self.region_names),
+                "sample_cost_s": self.sample_cost_s,
+                "memory_bytes": self.memory_bytes,
+                "battery_wh": self.battery_wh,
+                "train_power_w": self.train_power_w,
+                "down_mbps": self.down_mbps,
+                "up_mbps": self.up_mbps,
+                "samples": self.samples,
+            }
+        )
+
+
+def _draw(rng: np.random.Generator, trait: Trait, size: int) -> np.ndarray:
+    if trait.spread == 0:
+        return np.full(size, trait.median)
+    return trait.median * np.exp(trait.spread * rng.standard_normal(size))
+
+
+def sample_fleet(config: Config, seed: int) -> Fleet:
+    """Draw ``config.fleet.devices`` devices: type and region by share, traits lognormal."""
+    spec = config.fleet
+    n = spec.devices
+    rng = stream(seed, "fleet")
+    type_names = tuple(spec.device_types)
+    region_names = tuple(spec.regions)
+    type_share = np.array([t.share for t in spec.device_types.values()])
+    region_share = np.array([r.share for r in spec.regions.values()])
+    device_type = rng.choice(len(type_names), size=n, p=type_share / type_share.sum()).astype(np.int16)
+    region = rng.choice(len(region_names), size=n, p=region_share / region_share.sum()).astype(np.int16)
+
+    columns: dict[str, np.ndarray] = {
+        key: np.empty(n)
+        for key in ("sample_cost_s", "memory_bytes", "battery_wh", "train_power_w", "radio_power_w",
+                    "charge_power_w", "down_mbps", "up_mbps", "samples")
+    }
+    for index, kind in enumerate(spec.device_types.values()):
+        members = np.flatnonzero(device_type == index)
+        count = members.size
+        traits = {
+            "sample_cost_s": kind.sample_cost,
+            "memory_bytes": kind.memory,
+            "battery_wh": kind.battery_wh,
+            "train_power_w": kind.train_power_w,
+            "down_mbps": kind.down_mbps,
+            "up_mbps": kind.up_mbps,
+            "samples": kind.samples,
+        }
+        # Draw in a fixed order so each trait's stream position depends only on the fleet spec.
+        for key, trait in traits.items():
+            columns[key][members] = _draw(rng, trait, count)
+        columns["radio_power_w"][members] = kind.radio_power_w
+        columns["charge_power_w"][members] = kind.charge_power_w
+    phase = rng.uniform(0.0, config.rounds.checkin_every, size=n)
+    return Fleet(
+        type_names=type_names,
+        region_names=region_names,
+        device_type=device_type,
+        region=region,
+        sample_cost_s=columns["sample_cost_s"],
+        memory_bytes=columns["memory_bytes"],
+        battery_wh=columns["battery_wh"],
+        train_power_w=columns["train_power_w"],
+        radio_power_w=columns["radio_power_w"],
+        charge_power_w=columns["charge_power_w"],
+        down_mbps=columns["down_mbps"],
+        up_mbps=columns["up_mbps"],
+        samples=np.maximum(1, np.rint(columns["samples"])).astype(np.int32),
+        checkin_phase_s=phase,
+    )

@@ -1,0 +1,256 @@
+"""Selection policies: which check-ins a round accepts.
+
+A policy has one required method, :meth:`SelectionPolicy.choose`. The engine hands it the
+eligible check-ins of one collection window as arrays (:class:`Candidates`) and the number
+of devices the round still needs; it returns the positions it accepts, in bulk. Two
+attributes shape the windows:
+
+- ``window_s``: length of a collection window (the engine may use shorter windows at the
+  end of the selection timeout);
+- ``holds_checkins``: if true the server holds each window's check-ins and accepts at the
+  window's end; if false it accepts at check-in time, and the policy must choose causally
+  (a check-in's fate may depend only on earlier check-ins in the window), so that the engine
+  may pass long windows without changing the outcome.
+
+Every built-in policy is written on this same interface. A plug-in is named in the fleet
+file as ``package.module:Name`` and built with the file's ``params`` as keyword arguments;
+see docs/policies.md for a worked example.
+"""
+
+from __future__ import annotations
+
+import importlib
+from dataclasses import dataclass
+from typing import Any, ClassVar
+
+import numpy as np
+import pandas as pd
+
+from .errors import ConfigError
+
+__all__ = [
+    "Candidates",
+    "RoundView",
+    "SelectionPolicy",
+    "FirstCome",
+    "Lottery",
+    "QuickFinish",
+    "ShareQuota",
+    "RestedFirst",
+    "BUILTIN_POLICIES",
+    "make_policy",
+]
+
+
+@dataclass(frozen=True)
+class Candidates:
+    """The eligible check-ins of one collection window, in check-in order.
+
+    Every array has one entry per check-in. Times are simulated seconds from the horizon
+    start. ``predicted_s`` is the server's estimate of the device's task time from its
+    reported traits (download + training + upload at its nominal speeds).
+    """
+
+    device: np.ndarray
+    checkin_s: np.ndarray
+    device_type: np.ndarray
+    region: np.ndarray
+    samples: np.ndarray
+    predicted_s: np.ndarray
+    battery_pct: np.ndarray
+    charging: np.ndarray
+    last_participation_s: np.ndarray  # -inf for a device that never took part
+    participations: np.ndarray
+    type_names: tuple[str, ...]
+    region_names: tuple[str, ...]
+
+    def __len__(self) -> int:
+        return int(self.device.size)
+
+    def frame(self) -> pd.DataFrame:
+        """The candidates as a DataFrame (for plug-ins that prefer pandas)."""
+        return pd.DataFrame(
+            {
+                "device": self.device,
+                "checkin_s": self.checkin_s,
+                "device_type": pd.Categorical.from_codes(self.device_type, self.type_names),
+                "region": pd.Categorical.from_codes(self.region, self.region_names),
+                "samples": self.samples,
+                "predicted_s": self.predicted_s,
+                "battery_pct": self.battery_pct,
+                "charging": self.charging,
+                "last_participation_s": self.last_participation_s,
+                "participations": self.participations,
+            }
+        )
+
+
+@dataclass(frozen=True)
+class RoundView:
+    """What a policy may know of the round being filled."""
+
+    round_index: int
+    opened_s: float
+    now_s: float  # start of this collection window
+    timeout_s: float  # when the selection timeout passes
+    accept_count: int  # ceil(target_reports * over_selection)
+    needed: int  # still to accept
+    accepted_by_type: np.ndarray  # accepted so far, per device type
+    type_shares: np.ndarray  # device types' configured fleet shares
+
+
+class SelectionPolicy:
+    """Base of all selection policies; override :meth:`choose`.
+
+    Raises nothing itself; a plug-in that returns positions out of range or repeated makes
+    the engine raise FleetsimError naming the policy.
+    """
+
+    name: ClassVar[str] = "custom"
+    holds_checkins: bool = True
+    window_s: float = 20.0
+
+    def choose(self, candidates: Candidates, round: RoundView, rng: np.random.Generator) -> np.ndarray:
+        """Return positions (into ``candidates``) to accept: at most ``round.needed``."""
+        raise NotImplementedError
+
+    def describe(self) -> str:
+        return f"{self.name} (window {self.window_s:g}s, {'holds' if self.holds_checkins else 'accepts on arrival'})"
+
+
+class FirstCome(SelectionPolicy):
+    """Arrival order: accept each eligible check-in as it comes until the round is full."""
+
+    name = "first-come"
+    holds_checkins = False
+
+    def __init__(self, window: float = 30.0):
+        self.window_s = float(window)
+
+    def choose(self, candidates: Candidates, round: RoundView, rng: np.random.Generator) -> np.ndarray:
+        return np.arange(min(round.needed, len(candidates)))
+
+
+class Lottery(SelectionPolicy):
+    """Uniform random over a short collection window: each window's check-ins are held, then
+    ``needed`` of them are drawn without replacement."""
+
+    name = "lottery"
+    holds_checkins = True
+
+    def __init__(self, window: float = 20.0):
+        self.window_s = float(window)
+
+    def choose(self, candidates: Candidates, round: RoundView, rng: np.random.Generator) -> np.ndarray:
+        take = min(round.needed, len(candidates))
+        return np.sort(rng.choice(len(candidates), size=take, replace=False))
+
+
+class QuickFinish(SelectionPolicy):
+    """Speed-aware: in each window prefer the devices predicted to finish soonest.
+
+    ``max_predicted``: if set (seconds), check-ins predicted to take longer are refused.
+    """
+
+    name = "quick-finish"
+    holds_checkins = True
+
+    def __init__(self, window: float = 20.0, max_predicted: float | None = None):
+        self.window_s = float(window)
+        self.max_predicted = max_predicted
+
+    def choose(self, candidates: Candidates, round: RoundView, rng: np.random.Generator) -> np.ndarray:
+        order = np.argsort(candidates.predicted_s, kind="stable")
+        if self.max_predicted is not None:
+            order = order[candidates.predicted_s[order] <= self.max_predicted]
+        return order[: round.needed]
+
+
+class ShareQuota(SelectionPolicy):
+    """Per-type quota in proportion to fleet shares, in arrival order.
+
+    Each device type may fill ceil(share * accept_count) places. After ``relax_after`` (a
+    fraction of the selection timeout) the quotas lift, so a scarce type cannot stall every
+    round.
+    """
+
+    name = "share-quota"
+    holds_checkins = False
+
+    def __init__(self, window: float = 30.0, relax_after: float = 0.75):
+        if not 0.0 <= relax_after <= 1.0:
+            raise ValueError(f"relax_after(={relax_after}) must be in [0, 1]")
+        self.window_s = float(window)
+        self.relax_after = float(relax_after)
+
+    def choose(self, candidates: Candidates, round: RoundView, rng: np.random.Generator) -> np.ndarray:
+        relax_at = round.opened_s + self.relax_after * (round.timeout_s - round.opened_s)
+        quota = np.ceil(round.type_shares * round.accept_count - 1e-9).astype(np.int64)
+        room = np.maximum(quota - round.accepted_by_type, 0)
+        # Rank of each check-in among earlier check-ins of its own type.
+        types = candidates.device_type.astype(np.int64)
+        order = np.argsort(types, kind="stable")
+        sorted_types = types[order]
+        starts = np.searchsorted(sorted_types, sorted_types, side="left")
+        rank = np.empty(types.size, dtype=np.int64)
+        rank[order] = np.arange(types.size) - starts
+        ok = (rank < room[types]) | (candidates.checkin_s >= relax_at)
+        # Lifted quotas only admit check-ins after relax_at; keep arrival order overall.
+        return np.flatnonzero(ok)[: round.needed]
+
+
+class RestedFirst(SelectionPolicy):
+    """Longest-rested first: in each window prefer devices whose last participation is
+    oldest (never-seen devices first), ties broken by check-in order."""
+
+    name = "rested-first"
+    holds_checkins = True
+
+    def __init__(self, window: float = 20.0):
+        self.window_s = float(window)
+
+    def choose(self, candidates: Candidates, round: RoundView, rng: np.random.Generator) -> np.ndarray:
+        order = np.argsort(candidates.last_participation_s, kind="stable")
+        return order[: round.needed]
+
+
+BUILTIN_POLICIES: dict[str, type[SelectionPolicy]] = {
+    cls.name: cls for cls in (FirstCome, Lottery, QuickFinish, ShareQuota, RestedFirst)
+}
+
+
+def make_policy(name: str, params: dict[str, Any], source: str = "selection") -> SelectionPolicy:
+    """Build a built-in policy by name, or a plug-in from ``package.module:Name``.
+
+    Raises ConfigError if the name is unknown, the plug-in cannot be imported, it lacks a
+    ``choose`` method, or its parameters are refused.
+    """
+    if name in BUILTIN_POLICIES:
+        factory: Any = BUILTIN_POLICIES[name]
+    elif ":" in name:
+        module_name, _, attr = name.partition(":")
+        try:
+            module = importlib.import_module(module_name)
+            factory = getattr(module, attr)
+        except Exception as exc:  # an import can fail in any way; report it in one line
+            raise ConfigError(
+                [f"{source}.policy: cannot import plug-in {name!r} ({type(exc).__name__}: {exc})"]
+            ) from None
+    else:
+        raise ConfigError(
+            [f"{source}.policy: unknown policy {name!r}; expected one of "
+             f"{', '.join(BUILTIN_POLICIES)} or package.module:Name"]
+        )
+    try:
+        policy = factory(**params)
+    except (TypeError, ValueError) as exc:
+        raise ConfigError([f"{source}.params: policy {name!r} refused its parameters: {exc}"]) from None
+    if not callable(getattr(policy, "choose", None)):
+        raise ConfigError([f"{source}.policy: {name!r} has no choose(candidates, round, rng) method"])
+    if not hasattr(policy, "window_s"):
+        policy.window_s = SelectionPolicy.window_s
+    if not hasattr(policy, "holds_checkins"):
+        policy.holds_checkins = SelectionPolicy.holds_checkins
+    if not np.isfinite(policy.window_s) or policy.window_s <= 0:
+        raise ConfigError([f"{source}.params.window: expected a positive number of seconds, got {policy.window_s!r}"])
+    return policy

@@ -1,0 +1,297 @@
+"""The server's round protocol as simpy processes.
+
+A round opens; it accepts check-ins per the selection policy until
+``ceil(target_reports * over_selection)`` are accepted or the selection timeout passes (with
+fewer than ``min_reports`` accepted the round is abandoned); then the report deadline runs.
+The round closes at the earlier of ``target_reports`` reports or the deadline and commits
+when it holds at least ``min_reports``. At close, devices still downloading or training are
+told to stop; a device already uploading finishes and its report is refused as late. The
+next round opens after the aggregation time. A server outage loses the round it cuts and
+holds the next one until it ends. Every accepted device then rests for ``rest``.
+
+simpy drives only these server-side events; each cohort's tasks are resolved in bulk
+(:mod:`fleetsim.client`).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Generator
+from typing import Any
+
+import numpy as np
+import simpy
+
+from .client import CAUSES, resolve_cohort
+from .config import SIGNALS, Config
+from .errors import FleetsimError
+from .events import OUTCOMES, ROUND_STATUS, WASTE_CAUSES, EventLog
+from .policies import RoundView, SelectionPolicy
+from .runtime import FleetRuntime
+
+__all__ = ["RoundServer"]
+
+_OUT = {name: i for i, name in enumerate(OUTCOMES)}
+_WASTE = {name: i for i, name in enumerate(WASTE_CAUSES)}
+_STATUS = {name: i for i, name in enumerate(ROUND_STATUS)}
+_CAUSE_TO_WASTE = np.array([_WASTE["used"]] + [_WASTE[c] for c in CAUSES[1:]], dtype=np.int8)
+
+
+class RoundServer:
+    """Runs rounds back to back from the horizon start until it ends."""
+
+    def __init__(
+        self,
+        env: simpy.Environment,
+        config: Config,
+        runtime: FleetRuntime,
+        policy: SelectionPolicy,
+        log: EventLog,
+        rngs: dict[str, np.random.Generator],
+        horizon_s: float,
+        on_progress: Callable[[float], None] | None = None,
+    ):
+        self.env = env
+        self.config = config
+        self.runtime = runtime
+        self.policy = policy
+        self.log = log
+        self.rngs = rngs
+        self.horizon_s = horizon_s
+        self.on_progress = on_progress
+        fleet = runtime.fleet
+        shares = np.array([config.fleet.device_types[t].share for t in fleet.type_names])
+        self.type_shares = shares / shares.sum()
+        self.outages = sorted(
+            (d.start, d.start + d.duration) for d in config.disruptions if d.kind == "server-outage"
+        )
+        self.round_index = 0
+        self._rate = None  # eligible check-ins per second seen lately (sizes arrival windows)
+        self._mean_on = np.array(
+            [[config.fleet.device_types[t].signals[s].mean_on for t in fleet.type_names] for s in SIGNALS]
+        )  # [S, types]
+
+    # -------------------------------------------------------------------------- helpers
+
+    def _outage_at(self, t: float) -> tuple[float, float] | None:
+        for start, end in self.outages:
+            if start <= t < end:
+                return start, end
+        return None
+
+    def _next_outage_after(self, t: float) -> float:
+        starts = [start for start, _ in self.outages if start > t]
+        return min(starts) if starts else np.inf
+
+    def run(self) -> Generator[Any, Any, None]:
+        """The server process: open rounds until the horizon ends."""
+        env = self.env
+        while env.now < self.horizon_s:
+            outage = self._outage_at(env.now)
+            if outage is not None:
+                yield env.timeout(outage[1] - env.now)
+                continue
+            closed = self._round(env.now)
+            yield env.timeout(max(closed - env.now, 0.0))
+            if self.on_progress is not None:
+                self.on_progress(env.now)
+            yield env.timeout(self.config.rounds.aggregation_time)
+
+    # -------------------------------------------------------------------------- one round
+
+    def _select(self, opened: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, float, int]:
+        """Fill the round: accepted devices, acceptance times, battery %, charging; end; check-ins."""
+        rounds = self.config.rounds
+        runtime, policy = self.runtime, self.policy
+        rng = self.rngs["policy"]
+        n_types = len(runtime.fleet.type_names)
+        accept_count = rounds.accept_count
+        timeout_at = opened + rounds.selection_timeout
+        needed = accept_count
+        by_type = np.zeros(n_types, dtype=np.int64)
+        chunks: list[tuple[np.ndarray, ...]] = []
+        t = opened
+        checkins = 0
+        selected_at = timeout_at
+        while needed > 0 and t < timeout_at:
+            length = policy.window_s
+            if not policy.holds_checkins and self._rate:
+                # Causal policies: a window long enough for the needed check-ins, no longer.
+                length = min(length, max(1.0, 2.0 * needed / self._rate))
+            end = min(t + length, timeout_at)
+            devices, times, battery, charging = runtime.checkins(t, end)
+            checkins += devices.size
+            if end > t and devices.size:
+                self._rate = max(devices.size / (end - t), 1e-3)
+            if devices.size == 0:
+                t = end
+                continue
+            view = RoundView(
+                round_index=self.round_index,
+                opened_s=opened,
+                now_s=t,
+                timeout_s=timeout_at,
+                accept_count=accept_count,
+                needed=needed,
+                accepted_by_type=by_type.copy(),
+                type_shares=self.type_shares,
+            )
+            candidates = runtime.candidates(devices, times, battery, charging)
+            chosen = np.asarray(policy.choose(candidates, view, rng), dtype=np.int64)
+            if chosen.size > needed or (chosen.size and (chosen.min() < 0 or chosen.max() >= devices.size)) \
+                    or np.unique(chosen).size != chosen.size:
+                raise FleetsimError(
+                    f"selection policy {type(policy).__name__} returned invalid positions "
+                    f"(need at most {needed} distinct positions in 0..{devices.size - 1})"
+                )
+            if chosen.size:
+                chosen.sort()
+                at = times[chosen] if not policy.holds_checkins else np.full(chosen.size, end)
+                chunks.append((devices[chosen], at, battery[chosen], charging[chosen]))
+                runtime.free_at[devices[chosen]] = np.inf  # busy: no more check-ins
+                np.add.at(by_type, runtime.fleet.device_type[devices[chosen]], 1)
+                needed -= chosen.size
+                if needed == 0:
+                    selected_at = float(at.max())
+            t = end
+        if not chunks:
+            empty = np.empty(0)
+            return empty.astype(np.int64), empty, empty, empty.astype(bool), timeout_at, checkins
+        devices, at, battery, charging = (np.concatenate(parts) for parts in zip(*chunks, strict=True))
+        return devices, at, battery, charging, selected_at, checkins
+
+    def _round(self, opened: float) -> float:
+        """Run one round from ``opened``; log it; return its close time."""
+        rounds = self.config.rounds
+        runtime = self.runtime
+        fleet = runtime.fleet
+        index = self.round_index
+        self.round_index += 1
+        devices, accept_s, battery, charging, selected_at, checkins = self._select(opened)
+        n = devices.size
+        enough = n >= rounds.required_reports
+
+        arrays = {
+            "device_type": fleet.device_type[devices],
+            "region": fleet.region[devices],
+            "down_mbps": fleet.down_mbps[devices],
+            "up_mbps": fleet.up_mbps[devices],
+            "samples": fleet.samples[devices],
+            "sample_cost_s": fleet.sample_cost_s[devices],
+            "radio_power_w": fleet.radio_power_w[devices],
+            "train_power_w": fleet.train_power_w[devices],
+            "charge_power_w": fleet.charge_power_w[devices],
+            "battery_wh": fleet.battery_wh[devices],
+        }
+        mean_on = self._mean_on[:, arrays["device_type"]]
+        cohort = resolve_cohort(
+            self.config, arrays, devices, accept_s, charging, battery, mean_on, self.rngs["task"],
+            fleet.type_names, fleet.region_names,
+        )
+        report_at = accept_s + np.where(np.isinf(cohort.drop_at), cohort.task_s, np.inf)
+        if enough:
+            deadline_at = selected_at + rounds.report_deadline
+            k = rounds.target_reports
+            kth = np.partition(report_at, k - 1)[k - 1] if n >= k else np.inf
+            closed = max(min(deadline_at, kth), selected_at)
+        else:
+            closed = selected_at  # abandoned when the selection timeout passes
+        outage_start = self._next_outage_after(opened)
+        lost = outage_start <= closed
+        if lost:
+            closed = outage_start
+
+        rel_close = closed - accept_s
+        reported = report_at <= closed
+        dropped = ~reported & (cohort.drop_at <= rel_close)
+        working = ~reported & ~dropped
+        uploading = working & (cohort.phase_at(rel_close) == 3) & ~lost
+        late = uploading & np.isinf(cohort.drop_at)
+        late_drop = uploading & ~late
+        stopped = working & ~uploading
+
+        end_rel = np.where(reported | late, cohort.task_s, rel_close)
+        end_rel = np.where(dropped | late_drop, cohort.drop_at, end_rel)
+        outcome = np.full(n, _OUT["stopped"], dtype=np.int8)
+        outcome[reported] = _OUT["reported"]
+        outcome[late] = _OUT["late"]
+        outcome[dropped | late_drop] = _OUT["dropout"]
+        is_drop = dropped | late_drop
+        cause = np.where(is_drop, cohort.cause, 0).astype(np.int8)
+        phase = np.where(is_drop, cohort.phase_at(cohort.drop_at), 0).astype(np.int8)
+
+        n_reports = int(reported.sum())
+        if lost:
+            status = "outage"
+        elif not enough:
+            status = "abandoned"
+        elif n_reports >= rounds.required_reports:
+            status = "committed"
+        else:
+            status = "failed"
+        used = reported & (status == "committed")
+        waste = np.full(n, _WASTE["stopped-at-close"], dtype=np.int8)
+        waste[late] = _WASTE["late"]
+        waste[is_drop] = _CAUSE_TO_WASTE[cohort.cause[is_drop]]
+        if status != "committed":
+            round_cause = {"failed": "failed-round", "abandoned": "abandoned-round", "outage": "server-outage"}[status]
+            waste[~is_drop] = _WASTE[round_cause]
+        waste[used] = _WASTE["used"]
+
+        compute_s, bytes_down, bytes_up, energy_wh = cohort.work_until(end_rel)
+        ended = accept_s + end_rel
+        self.log.add_participations(
+            round=np.full(n, index),
+            device=devices,
+            device_type=arrays["device_type"],
+            region=arrays["region"],
+            accepted_s=accept_s,
+            ended_s=ended,
+            download_s=cohort.download_s,
+            train_s=cohort.train_s,
+            upload_s=cohort.upload_s,
+            outcome=outcome,
+            cause=cause,
+            phase=phase,
+            waste_cause=waste,
+            used=used,
+            compute_s=compute_s,
+            bytes_down=bytes_down,
+            bytes_up=bytes_up,
+            energy_wh=energy_wh,
+            battery_start_pct=battery,
+            battery_used_pct=100.0 * energy_wh / arrays["battery_wh"],
+            samples=arrays["samples"],
+        )
+        self.log.add_round(
+            round=index,
+            opened_s=opened,
+            selected_s=selected_at,
+            closed_s=closed,
+            accepted=n,
+            reports=n_reports,
+            status=_STATUS[status],
+            checkins=checkins,
+        )
+        self._release(cohort, devices, accept_s, end_rel, cause)
+        return closed
+
+    def _release(self, cohort: Any, devices: np.ndarray, accept_s: np.ndarray, end_rel: np.ndarray,
+                 cause: np.ndarray) -> None:
+        """After the round: rest periods, participation counts, and what is known of signals."""
+        runtime = self.runtime
+        ended = accept_s + end_rel
+        runtime.free_at[devices] = ended + self.config.rounds.rest
+        runtime.last_participation[devices] = ended
+        runtime.participations[devices] += 1
+        for s in range(len(SIGNALS)):
+            off_at = cohort.signal_off_at[s]
+            tracked = np.isfinite(off_at)
+            if not tracked.any():
+                continue
+            went_off = tracked & (off_at <= end_rel)
+            still_on = tracked & ~went_off
+            if still_on.any():
+                runtime.signals.record(devices[still_on], s, ended[still_on], np.ones(int(still_on.sum())))
+            if went_off.any():
+                when = accept_s[went_off] + off_at[went_off]
+                runtime.signals.record(devices[went_off], s, when, np.zeros(int(went_off.sum())))
