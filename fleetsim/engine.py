@@ -32,7 +32,7 @@ STREAMS = ("fleet", "checkin", "battery", "task", "policy", "census")
 CENSUS_EVERY_S = 900.0
 """How often the eligible devices are counted (the counts feed eligible shares and hourly load)."""
 
-CENSUS_SAMPLE = 20_000
+CENSUS_SAMPLE = 4096
 """Devices drawn for each count; fleets up to this size are counted whole."""
 
 
@@ -146,7 +146,8 @@ def simulate(
 
 
 def _census_frame(fleet: Fleet, times: list[float], sampled: list[np.ndarray], eligible: list[np.ndarray]) -> pd.DataFrame:
-    """Long table: time_s, device_type, region, sampled, eligible, eligible_est (scaled to the fleet)."""
+    """Long table: time_s, device_type, region, sampled, eligible (expected, among the sampled),
+    eligible_est (scaled to the group's size in the fleet)."""
     n_regions = len(fleet.region_names)
     n_groups = len(fleet.type_names) * n_regions
     group_size = np.bincount(fleet.group, minlength=n_groups)

@@ -13,6 +13,7 @@ is at or above the workload's minimum.
 from __future__ import annotations
 
 import numpy as np
+from scipy import stats
 
 from .config import SIGNALS, Config
 from .fleet import Fleet
@@ -54,6 +55,9 @@ class FleetRuntime:
         levels = [config.fleet.device_types[name].battery_level for name in fleet.type_names]
         self.beta_charging = np.array([_beta_params(lv.charging.mean, lv.charging.sd) for lv in levels])
         self.beta_unplugged = np.array([_beta_params(lv.unplugged.mean, lv.unplugged.sd) for lv in levels])
+        floor = self.min_battery / 100.0
+        self.battery_ok_charging = stats.beta.sf(floor, *self.beta_charging.T)
+        self.battery_ok_unplugged = stats.beta.sf(floor, *self.beta_unplugged.T)
         work = config.workload
         padded = np.ceil(fleet.samples / work.batch_size) * work.batch_size
         self.predicted_s = (
@@ -137,28 +141,27 @@ class FleetRuntime:
     # ------------------------------------------------------------------ measurement
 
     def census(self, t: float, sample: int) -> tuple[np.ndarray, np.ndarray]:
-        """Sampled devices per (type, region) group and how many of them are eligible at ``t``.
+        """Sampled devices per (type, region) group and their expected eligible count at ``t``.
 
-        Draws without recording, so measuring does not change the run.
+        Each sampled device adds its probability of being eligible given the run so far (the
+        product of its required signals' on-probabilities and the chance its battery level
+        clears the minimum), so the count has no sampling noise beyond the choice of devices
+        and measuring does not change the run.
         """
-        rng = self.rngs["census"]
         n = self.fleet.size
-        # With replacement: O(sample) per count, and the per-group estimates stay unbiased.
-        devices = np.arange(n) if sample >= n else rng.integers(0, n, size=sample)
-        groups = self.group[devices]
+        devices = np.arange(n) if sample >= n else self.rngs["census"].integers(0, n, size=sample)
         n_groups = len(self.fleet.type_names) * len(self.fleet.region_names)
-        sampled = np.bincount(groups, minlength=n_groups)
-        times = np.full(devices.size, t)
-        ok = self.capable[devices] & (self.free_at[devices] <= t)
-        live = devices[ok]
+        sampled = np.bincount(self.group[devices], minlength=n_groups)
+        live = devices[self.capable[devices] & (self.free_at[devices] <= t)]
+        times = np.full(live.size, t)
+        prob = np.ones(live.size)
         for s in self.required:
-            on = self.signals.peek(live, s, times[: live.size], rng)
-            live = live[on]
+            prob *= self.signals.probability(live, s, times)
+        types = self.fleet.device_type[live]
         if _CHARGING in self.required:
-            charging = np.ones(live.size, dtype=bool)
+            prob *= self.battery_ok_charging[types]
         else:
-            charging = self.signals.peek(live, _CHARGING, times[: live.size], rng)
-        battery = self._battery(live, charging, rng)
-        live = live[battery >= self.min_battery]
-        eligible = np.bincount(self.group[live], minlength=n_groups)
+            q = self.signals.probability(live, _CHARGING, times)
+            prob *= q * self.battery_ok_charging[types] + (1 - q) * self.battery_ok_unplugged[types]
+        eligible = np.bincount(self.group[live], weights=prob, minlength=n_groups)
         return sampled, eligible

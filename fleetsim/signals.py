@@ -76,26 +76,46 @@ class SignalTables:
         self, group: np.ndarray, signal: int, t_from: np.ndarray, q_from: np.ndarray, t_to: np.ndarray
     ) -> np.ndarray:
         """Probability the signal is on at ``t_to`` given on-probability ``q_from`` at ``t_from``."""
+        steps = self.steps
         k0 = self.step_of(t_from)
         k1 = self.step_of(t_to)
-        p0 = self.p[group, signal, k0]
-        r0 = self.rate[group, signal, k0]
-        p1 = self.p[group, signal, k1]
-        r1 = self.rate[group, signal, k1]
-        same = k0 == k1
-        # Same step: one constant-rate segment.
-        q_same = p0 + (q_from - p0) * np.exp(-r0 * (t_to - t_from))
-        # Otherwise: to the end of step k0, across whole steps by the prefix map, then into k1.
-        end0 = self.origin_s + (k0 + 1) * self.step_s
-        start1 = self.origin_s + k1 * self.step_s
+        line = group.astype(np.int64) * self.p.shape[1] + signal
+        row = line * steps
+        i0, i1 = row + k0, row + k1
+        p_flat, rate_flat = self._flat_p, self._flat_rate
+        p0, r0 = p_flat[i0], rate_flat[i0]
+        # To the end of step k0 (or to t_to if it lies in the same step).
+        end0 = np.minimum(self.origin_s + (k0 + 1) * self.step_s, t_to)
         q = p0 + (q_from - p0) * np.exp(-r0 * np.maximum(end0 - t_from, 0.0))
-        a_from = self.prefix_a[group, signal, k0 + 1]
-        a_to = self.prefix_a[group, signal, k1]
-        decay = np.exp(-(self.prefix_log[group, signal, k1] - self.prefix_log[group, signal, k0 + 1]))
-        q = a_to + decay * (q - a_from)
-        q = p1 + (q - p1) * np.exp(-r1 * np.maximum(t_to - start1, 0.0))
-        out = np.where(same, q_same, q)
-        return np.clip(out, 0.0, 1.0)
+        later = np.flatnonzero(k1 > k0)
+        if later.size:
+            # Across whole steps by the prefix map, then into step k1.
+            prefix_row = line[later] * (steps + 1)
+            j0 = prefix_row + k0[later] + 1
+            j1 = prefix_row + k1[later]
+            a_flat, log_flat = self._flat_a, self._flat_log
+            decay = np.exp(-(log_flat[j1] - log_flat[j0]))
+            ql = a_flat[j1] + decay * (q[later] - a_flat[j0])
+            p1, r1 = p_flat[i1[later]], rate_flat[i1[later]]
+            start1 = self.origin_s + k1[later] * self.step_s
+            q[later] = p1 + (ql - p1) * np.exp(-r1 * np.maximum(t_to[later] - start1, 0.0))
+        return np.clip(q, 0.0, 1.0)
+
+    @property
+    def _flat_p(self) -> np.ndarray:
+        return self.p.reshape(-1)
+
+    @property
+    def _flat_rate(self) -> np.ndarray:
+        return self.rate.reshape(-1)
+
+    @property
+    def _flat_a(self) -> np.ndarray:
+        return self.prefix_a.reshape(-1)
+
+    @property
+    def _flat_log(self) -> np.ndarray:
+        return self.prefix_log.reshape(-1)
 
     def stationary(self, group: np.ndarray, signal: int, t: np.ndarray) -> np.ndarray:
         return self.p[group, signal, self.step_of(t)]
@@ -163,8 +183,8 @@ class SignalState:
     """Per-device, per-signal last look: time and on-probability then (0/1 once seen).
 
     Observations must move forward in time per device and signal; :meth:`observe` samples
-    the states at later times and records them, :meth:`peek` samples without recording (for
-    measurements that must not disturb the run).
+    the states at later times and records them, :meth:`probability` gives the on-probability
+    without drawing or recording (for measurements that must not disturb the run).
     """
 
     def __init__(self, tables: SignalTables, group: np.ndarray):
@@ -190,9 +210,9 @@ class SignalState:
         self.q_last[signal, devices] = on
         return on
 
-    def peek(self, devices: np.ndarray, signal: int, t: np.ndarray, rng: np.random.Generator) -> np.ndarray:
-        """Sample whether ``signal`` is on at ``t`` without recording the draw."""
-        return rng.random(devices.size) < self._probability(devices, signal, t)
+    def probability(self, devices: np.ndarray, signal: int, t: np.ndarray) -> np.ndarray:
+        """On-probability of ``signal`` at ``t`` given what the run has seen (nothing recorded)."""
+        return self._probability(devices, signal, t)
 
     def record(self, devices: np.ndarray, signal: int, t: np.ndarray, on: np.ndarray) -> None:
         """Record known states (e.g. a signal seen on until a task ended)."""
