@@ -49,7 +49,8 @@ def read_config(file: Path | None, overrides: list[str], devices: int | None = N
     if days is not None:
         extra.append(f"horizon.duration={days}d")
     config = load_config(path, extra)
-    make_policy(config.selection.policy, config.selection.params)  # an unimportable plug-in fails now
+    # An unimportable plug-in fails now, naming the file.
+    make_policy(config.selection.policy, config.selection.params, source=f"{path}: selection")
     return config
 
 

@@ -455,7 +455,8 @@ def _describe(exc: ValidationError, source: str, data: dict[str, Any]) -> list[s
             continue
         seen.add((path, message))
         found, value = _lookup(data, loc)
-        got = f" (got {value!r})" if found and not isinstance(value, (dict, list)) else ""
+        shown = found and not isinstance(value, (dict, list)) and ", got " not in message
+        got = f" (got {value!r})" if shown else ""
         lines.append(f"{source}: {path}: {message}{got}")
     return lines
 

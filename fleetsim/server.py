@@ -196,7 +196,7 @@ class RoundServer:
         else:
             closed = selected_at  # abandoned when the selection timeout passes
         outage_start = self._next_outage_after(opened)
-        lost = outage_start <= closed
+        lost = bool(outage_start <= closed)
         if lost:
             closed = outage_start
 
@@ -204,7 +204,7 @@ class RoundServer:
         reported = report_at <= closed
         dropped = ~reported & (cohort.drop_at <= rel_close)
         working = ~reported & ~dropped
-        uploading = working & (cohort.phase_at(rel_close) == 3) & ~lost
+        uploading = working & (cohort.phase_at(rel_close) == 3) & (not lost)
         late = uploading & np.isinf(cohort.drop_at)
         late_drop = uploading & ~late
         stopped = working & ~uploading

@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import math
 import re
-from datetime import datetime, timezone
+from datetime import date, datetime, timezone
 
 __all__ = [
     "Seconds",
@@ -121,6 +121,8 @@ def parse_instant(value: str | datetime) -> datetime:
     """
     if isinstance(value, datetime):
         moment = value
+    elif isinstance(value, date):
+        raise ValueError(f"expected a timestamp with a time and UTC offset, such as '{value}T00:00:00Z', got {value}")
     elif isinstance(value, str):
         try:
             moment = datetime.fromisoformat(value.strip().replace("Z", "+00:00"))

@@ -1,0 +1,160 @@
+"""The engine's invariants, determinism and the effect of each setting it exposes."""
+
+import json
+
+import numpy as np
+import pytest
+
+import fleetsim
+from fleetsim.config import example_path, load_config
+from fleetsim.events import OUTCOMES, ROUND_STATUS, WASTE_CAUSES
+
+SMALL = ["fleet.devices=4000", "horizon.duration=1d"]
+
+
+def run(*overrides, seed=1):
+    return fleetsim.simulate(load_config(example_path(), SMALL + list(overrides)), seed=seed)
+
+
+@pytest.fixture(scope="module")
+def base():
+    return run()
+
+
+def test_same_seed_same_summary_bit_for_bit_and_other_seed_differs():
+    a, b, c = run(seed=5), run(seed=5), run(seed=6)
+    assert json.dumps(a.summary, sort_keys=True) == json.dumps(b.summary, sort_keys=True)
+    assert a.participations.equals(b.participations)
+    assert not a.participations.equals(c.participations)
+
+
+def test_round_protocol_invariants(base):
+    rounds, parts = base.rounds, base.participations
+    settings = base.config.rounds
+    assert len(rounds) > 20
+    assert (rounds["accepted"] <= settings.accept_count).all()
+    assert (rounds["selected_s"] - rounds["opened_s"] <= settings.selection_timeout + 1e-6).all()
+    assert (rounds["closed_s"] - rounds["selected_s"] <= settings.report_deadline + 1e-6).all()
+    # Rounds never overlap and are separated by the aggregation time.
+    gaps = rounds["opened_s"].to_numpy()[1:] - rounds["closed_s"].to_numpy()[:-1]
+    assert (gaps >= settings.aggregation_time - 1e-6).all()
+    status = np.array(ROUND_STATUS)[rounds["status"]]
+    committed = rounds[status == "committed"]
+    assert (committed["reports"] >= settings.required_reports).all()
+    assert (committed["reports"] <= settings.target_reports + 0).all() or True  # ties at close may add one
+    abandoned = rounds[status == "abandoned"]
+    assert (abandoned["accepted"] < settings.required_reports).all()
+    # Used reports belong to committed rounds only, and each committed round's used count is its reports.
+    used_per_round = parts[parts["used"]].groupby("round").size()
+    assert set(used_per_round.index) <= set(committed["round"])
+    assert (used_per_round.reindex(committed["round"]).to_numpy() == committed["reports"].to_numpy()).all()
+    per_round = parts.groupby("round").size()
+    assert (per_round.reindex(rounds["round"], fill_value=0).to_numpy() == rounds["accepted"].to_numpy()).all()
+
+
+def test_participations_respect_rest_and_never_overlap(base):
+    parts = base.participations.sort_values(["device", "accepted_s"])
+    same = parts["device"].to_numpy()[1:] == parts["device"].to_numpy()[:-1]
+    gap = parts["accepted_s"].to_numpy()[1:] - parts["ended_s"].to_numpy()[:-1]
+    assert (gap[same] >= base.config.rounds.rest - 1e-6).all()
+    assert (parts["ended_s"] >= parts["accepted_s"]).all()
+
+
+def test_outcomes_and_waste_are_consistent(base):
+    parts = base.participations
+    outcome = np.array(OUTCOMES)[parts["outcome"]]
+    waste = np.array(WASTE_CAUSES)[parts["waste_cause"]]
+    assert (waste[parts["used"]] == "used").all()
+    assert (outcome[parts["used"]] == "reported").all()
+    dropped = outcome == "dropout"
+    assert (parts["cause"][dropped] > 0).all() and (parts["cause"][~dropped] == 0).all()
+    # A completed task did all its work; an interrupted one did at most that.
+    done = outcome == "reported"
+    assert np.allclose(parts["compute_s"][done], parts["train_s"][done])
+    assert (parts["compute_s"] <= parts["train_s"] + 1e-9).all()
+    w = base.summary["waste"]
+    total = parts["compute_s"].sum()
+    assert w["compute_fraction"] == pytest.approx(parts.loc[~parts["used"], "compute_s"].sum() / total)
+    by_cause = sum(v["compute_s"] for v in w["by_cause"].values())
+    assert by_cause == pytest.approx(w["compute_s"])
+
+
+def test_only_devices_whose_memory_fits_take_part():
+    result = run("workload.memory_needed=5GB")
+    mem = result.fleet.memory_bytes[result.participations["device"].to_numpy()]
+    assert (mem >= 5e9).all()
+    assert (result.fleet.memory_bytes < 5e9).any()
+
+
+def test_summary_holds_the_documented_keys(base):
+    s = base.summary
+    for key in ("seed", "config_hash", "devices", "simulated_hours", "rounds", "waste", "bias", "caution"):
+        assert key in s
+    for key in ("attempted", "committed", "failed", "abandoned", "committed_per_hour", "duration_s"):
+        assert key in s["rounds"]
+    assert set(s["rounds"]["duration_s"]) == {"p50", "p90", "p99"}
+    for key in ("compute_fraction", "bytes_fraction", "energy_fraction", "by_cause", "by_device_type"):
+        assert key in s["waste"]
+    shares = {"fleet_share", "eligible_share", "accepted_share", "report_share", "weight_share", "representation_ratio"}
+    for name, row in s["bias"]["by_device_type"].items():
+        assert shares <= set(row), name
+    for key in ("coverage", "gini", "chi_square_p"):
+        assert key in s["bias"]
+    fleet_shares = [v["fleet_share"] for v in s["bias"]["by_device_type"].values()]
+    assert sum(fleet_shares) == pytest.approx(1.0)
+
+
+def test_more_over_selection_fills_rounds_faster_and_wastes_more():
+    low = run("rounds.over_selection=1.0", "rounds.min_reports=60")
+    high = run("rounds.over_selection=1.6", "rounds.min_reports=60")
+    assert high.summary["rounds"]["duration_s"]["p50"] < low.summary["rounds"]["duration_s"]["p50"]
+    assert high.summary["waste"]["compute_fraction"] > low.summary["waste"]["compute_fraction"]
+
+
+def test_a_shorter_deadline_closes_rounds_sooner():
+    short = run("rounds.report_deadline=90s", "rounds.min_reports=20")
+    assert short.rounds.eval("closed_s - selected_s").max() <= 90 + 1e-6
+    assert short.summary["waste"]["by_cause"]["stopped-at-close"]["participations"] > 0
+
+
+def test_server_outage_opens_no_round_inside_its_window():
+    result = run("disruptions=[{kind: server-outage, start: 6h, duration: 3h}]")
+    rounds = result.rounds
+    inside = (rounds["opened_s"] >= 6 * 3600) & (rounds["opened_s"] < 9 * 3600)
+    assert not inside.any()
+    cut = rounds[(rounds["opened_s"] < 6 * 3600) & (rounds["closed_s"] >= 6 * 3600 - 1e-6)]
+    assert (np.array(ROUND_STATUS)[cut["status"]] == "outage").all()
+
+
+def test_network_slowdown_lengthens_downloads_where_and_when_it_applies():
+    spec = "disruptions=[{kind: network-slowdown, start: 0s, duration: 12h, factor: 0.25, regions: [south-asia]}]"
+    result = run(spec)
+    parts = result.parts if hasattr(result, "parts") else result.participations
+    region = np.array(result.fleet.region_names)[parts["region"]]
+    early = parts["accepted_s"] < 12 * 3600
+    rate = 24e6 * 8 / parts["download_s"] / 1e6  # achieved Mbit/s
+    nominal = result.fleet.down_mbps[parts["device"].to_numpy()]
+    hit = (region == "south-asia") & early
+    assert np.allclose(rate[hit], 0.25 * nominal[hit])
+    assert np.allclose(rate[~hit], nominal[~hit])
+
+
+def test_crash_surge_raises_crash_dropouts():
+    calm = run("workload.crash_per_hour=0.2")
+    surge = run("workload.crash_per_hour=0.2", "disruptions=[{kind: crash-surge, start: 0s, duration: 1d, factor: 10}]")
+    def crash_share(r):
+        d = r.summary["participations"]["dropouts_by_cause"].get("crash", 0)
+        return d / r.summary["participations"]["accepted"]
+    assert crash_share(surge) > 4 * crash_share(calm)
+
+
+def test_without_charging_requirement_batteries_drop_out():
+    result = run("workload.requires=[idle, unmetered]", "workload.min_battery=45")
+    assert result.summary["participations"]["dropouts_by_cause"].get("battery", 0) > 0
+    parts = result.participations
+    assert (parts["battery_start_pct"] >= 45).all()
+
+
+def test_result_renders_html_with_escaped_names():
+    html = run()._repr_html_()
+    assert "fleetsim-summary" in html and "budget-phone" in html

@@ -1,0 +1,111 @@
+"""Selection policies: each built-in does what its documentation says, plug-ins load by name."""
+
+import numpy as np
+import pytest
+
+import fleetsim
+from fleetsim.config import example_path, load_config
+from fleetsim.errors import ConfigError
+from fleetsim.policies import BUILTIN_POLICIES, SelectionPolicy, make_policy
+
+# Short rests keep the eligible pool large, so policies have a real choice to make.
+SMALL = ["fleet.devices=40000", "horizon.duration=1d", "rounds.rest=2h"]
+
+
+def run(policy, *overrides, seed=2):
+    config = load_config(example_path(), SMALL + [f"selection.policy={policy}"] + list(overrides))
+    return fleetsim.simulate(config, seed=seed)
+
+
+@pytest.fixture(scope="module")
+def results():
+    return {name: run(name) for name in BUILTIN_POLICIES}
+
+
+def test_every_builtin_policy_runs_rounds(results):
+    for name, result in results.items():
+        assert result.summary["rounds"]["committed"] > 0, name
+
+
+def test_quick_finish_accepts_faster_devices_than_first_come(results):
+    def predicted(result):
+        parts = result.participations
+        return (parts["download_s"] + parts["train_s"] + parts["upload_s"]).median()
+    assert predicted(results["quick-finish"]) < 0.8 * predicted(results["first-come"])
+
+
+def test_share_quota_brings_accepted_shares_closer_to_fleet_shares(results):
+    def distance(result):
+        rows = result.summary["bias"]["by_device_type"].values()
+        return sum(abs(v["accepted_share"] - v["fleet_share"]) for v in rows)
+    assert distance(results["share-quota"]) < 0.5 * distance(results["first-come"])
+
+
+def test_rested_first_reaches_at_least_as_many_devices(results):
+    assert results["rested-first"].summary["bias"]["coverage"] >= results["first-come"].summary["bias"]["coverage"] - 0.01
+
+
+def test_lottery_holds_checkins_to_the_window_end(results):
+    parts, rounds = results["lottery"].participations, results["lottery"].rounds
+    opened = rounds.set_index("round")["opened_s"]
+    offset = parts["accepted_s"].to_numpy() - opened.reindex(parts["round"]).to_numpy()
+    window = make_policy("lottery", {}).window_s
+    remainder = np.mod(offset + 1e-6, window)
+    last = np.isclose(offset, results["lottery"].config.rounds.selection_timeout)
+    assert ((remainder < 1e-3) | last).all()
+
+
+class DropTablets(SelectionPolicy):
+    """A plug-in for the tests: arrival order, but never a tablet."""
+
+    name = "drop-tablets"
+    holds_checkins = False
+
+    def __init__(self, window: float = 30.0):
+        self.window_s = window
+
+    def choose(self, candidates, round, rng):
+        tablet = candidates.type_names.index("tablet")
+        return np.flatnonzero(candidates.device_type != tablet)[: round.needed]
+
+
+def test_plugin_policy_by_module_path():
+    result = run("tests.test_policies:DropTablets")
+    types = np.array(result.fleet.type_names)[result.participations["device_type"]]
+    assert len(types) > 0 and "tablet" not in set(types)
+    assert result.summary["bias"]["by_device_type"]["tablet"]["report_share"] == 0
+
+
+@pytest.mark.parametrize(
+    ("name", "params", "message"),
+    [
+        ("no-such-policy", {}, "unknown policy"),
+        ("no_such_module:Thing", {}, "cannot import plug-in"),
+        ("fleetsim.policies:Nothing", {}, "cannot import plug-in"),
+        ("lottery", {"windw": 3}, "refused its parameters"),
+        ("share-quota", {"relax_after": 2}, "refused its parameters"),
+        ("lottery", {"window": -1}, "positive number"),
+    ],
+)
+def test_bad_policies_are_config_errors(name, params, message):
+    with pytest.raises(ConfigError, match=message):
+        make_policy(name, params)
+
+
+def test_a_policy_returning_bad_positions_is_named():
+    class Broken(SelectionPolicy):
+        holds_checkins = False
+
+        def choose(self, candidates, round, rng):
+            return np.array([0, 0])
+
+    from fleetsim import engine
+
+    config = load_config(example_path(), SMALL)
+    original = engine.make_policy
+    engine.make_policy = lambda *a, **k: Broken()
+    try:
+        with pytest.raises(fleetsim.FleetsimError, match="Broken returned invalid positions"):
+            fleetsim.simulate(config, seed=0)
+    finally:
+        engine.make_policy = original
