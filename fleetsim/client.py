@@ -139,6 +139,7 @@ def resolve_cohort(
     fleet_arrays: dict[str, np.ndarray],
     device: np.ndarray,
     accept_s: np.ndarray,
+    held_s: np.ndarray,
     charging: np.ndarray,
     battery_pct: np.ndarray,
     mean_on_s: np.ndarray,
@@ -149,8 +150,10 @@ def resolve_cohort(
     """Resolve every accepted device's task.
 
     ``fleet_arrays`` maps trait names to per-device arrays (already indexed by ``device``);
-    ``charging`` and ``battery_pct`` are as seen at check-in; ``mean_on_s`` is [S, n], the
-    mean on-duration of each signal for each device.
+    ``held_s`` is how long the server held each check-in before accepting it (signals seen on
+    at check-in may turn off while held: such a device drops out at once); ``charging`` and
+    ``battery_pct`` are as seen at check-in; ``mean_on_s`` is [S, n], the mean on-duration of
+    each signal for each device.
     """
     work = config.workload
     n = device.size
@@ -173,7 +176,8 @@ def resolve_cohort(
 
     # Each interruption as a relative time; draw all of them so the stream does not depend on
     # which ones the workload turns on (common random numbers across settings).
-    signal_off = rng.exponential(1.0, size=(len(SIGNALS), n)) * mean_on_s
+    # Time each signal stays on, counted from the check-in (memoryless), then from acceptance.
+    signal_off = np.maximum(rng.exponential(1.0, size=(len(SIGNALS), n)) * mean_on_s - held_s, 0.0)
     crash_draw = rng.exponential(1.0, size=n)
     charging_off = signal_off[SIGNALS.index("charging")]
     charging_for = np.where(charging, charging_off, 0.0)

@@ -98,8 +98,9 @@ class RoundServer:
 
     # -------------------------------------------------------------------------- one round
 
-    def _select(self, opened: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, float, int]:
-        """Fill the round: accepted devices, acceptance times, battery %, charging; end; check-ins."""
+    def _select(self, opened: float) -> tuple[np.ndarray, ...]:
+        """Fill the round: accepted devices, check-in and acceptance times, battery %, charging;
+        the selection's end; eligible check-ins seen."""
         rounds = self.config.rounds
         runtime, policy = self.runtime, self.policy
         rng = self.rngs["policy"]
@@ -146,7 +147,7 @@ class RoundServer:
             if chosen.size:
                 chosen.sort()
                 at = times[chosen] if not policy.holds_checkins else np.full(chosen.size, end)
-                chunks.append((devices[chosen], at, battery[chosen], charging[chosen]))
+                chunks.append((devices[chosen], times[chosen], at, battery[chosen], charging[chosen]))
                 runtime.free_at[devices[chosen]] = np.inf  # busy: no more check-ins
                 np.add.at(by_type, runtime.fleet.device_type[devices[chosen]], 1)
                 needed -= chosen.size
@@ -155,9 +156,9 @@ class RoundServer:
             t = end
         if not chunks:
             empty = np.empty(0)
-            return empty.astype(np.int64), empty, empty, empty.astype(bool), timeout_at, checkins
-        devices, at, battery, charging = (np.concatenate(parts) for parts in zip(*chunks, strict=True))
-        return devices, at, battery, charging, selected_at, checkins
+            return empty.astype(np.int64), empty, empty, empty, empty.astype(bool), timeout_at, checkins
+        devices, checkin, at, battery, charging = (np.concatenate(parts) for parts in zip(*chunks, strict=True))
+        return devices, checkin, at, battery, charging, selected_at, checkins
 
     def _round(self, opened: float) -> float:
         """Run one round from ``opened``; log it; return its close time."""
@@ -166,7 +167,7 @@ class RoundServer:
         fleet = runtime.fleet
         index = self.round_index
         self.round_index += 1
-        devices, accept_s, battery, charging, selected_at, checkins = self._select(opened)
+        devices, checkin_s, accept_s, battery, charging, selected_at, checkins = self._select(opened)
         n = devices.size
         enough = n >= rounds.required_reports
 
@@ -184,7 +185,8 @@ class RoundServer:
         }
         mean_on = self._mean_on[:, arrays["device_type"]]
         cohort = resolve_cohort(
-            self.config, arrays, devices, accept_s, charging, battery, mean_on, self.rngs["task"],
+            self.config, arrays, devices, accept_s, accept_s - checkin_s, charging, battery, mean_on,
+            self.rngs["task"],
             fleet.type_names, fleet.region_names,
         )
         report_at = accept_s + np.where(np.isinf(cohort.drop_at), cohort.task_s, np.inf)
