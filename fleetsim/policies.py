@@ -42,27 +42,54 @@ __all__ = [
 ]
 
 
-@dataclass(frozen=True)
 class Candidates:
     """The eligible check-ins of one collection window, in check-in order.
 
     Every array has one entry per check-in. Times are simulated seconds from the horizon
     start. ``predicted_s`` is the server's estimate of the device's task time from its
-    reported traits (download + training + upload at its nominal speeds).
+    reported traits (download + training + upload at its nominal speeds). Per-device
+    attributes are gathered on first access, so a policy pays only for what it reads.
+
+    Attributes: ``device``, ``checkin_s``, ``battery_pct``, ``charging``, ``device_type``,
+    ``region``, ``samples``, ``predicted_s``, ``last_participation_s`` (-inf for a device
+    that never took part), ``participations``, ``type_names``, ``region_names``.
     """
 
-    device: np.ndarray
-    checkin_s: np.ndarray
+    _GATHERED = ("device_type", "region", "samples", "predicted_s", "last_participation_s", "participations")
+
+    def __init__(
+        self,
+        device: np.ndarray,
+        checkin_s: np.ndarray,
+        battery_pct: np.ndarray,
+        charging: np.ndarray,
+        fleet_arrays: dict[str, np.ndarray],
+        type_names: tuple[str, ...],
+        region_names: tuple[str, ...],
+    ):
+        self.device = device
+        self.checkin_s = checkin_s
+        self.battery_pct = battery_pct
+        self.charging = charging
+        self.type_names = type_names
+        self.region_names = region_names
+        self._fleet_arrays = fleet_arrays
+
+    def __getattr__(self, name: str) -> np.ndarray:
+        # Called only for attributes not yet set: gather the per-device array once.
+        if name in Candidates._GATHERED:
+            value = self._fleet_arrays[name][self.device]
+            setattr(self, name, value)
+            return value
+        raise AttributeError(name)
+
+    # Declared for type checkers; filled in by __getattr__ on first access.
     device_type: np.ndarray
     region: np.ndarray
     samples: np.ndarray
     predicted_s: np.ndarray
-    battery_pct: np.ndarray
-    charging: np.ndarray
-    last_participation_s: np.ndarray  # -inf for a device that never took part
+    last_participation_s: np.ndarray
     participations: np.ndarray
-    type_names: tuple[str, ...]
-    region_names: tuple[str, ...]
 
     def __len__(self) -> int:
         return int(self.device.size)
@@ -114,6 +141,12 @@ class SelectionPolicy:
         """Return positions (into ``candidates``) to accept: at most ``round.needed``."""
         raise NotImplementedError
 
+    # Optional: a policy may define ``rank(candidates, round, rng) -> array`` returning a key
+    # per check-in, computed before eligibility is known (``battery_pct`` is NaN and
+    # ``charging`` False at that point), such that ``choose`` on any set holding the
+    # ``needed`` lowest-keyed eligible check-ins returns those (an infinite key: never
+    # chosen). The engine then looks only at as many check-ins as the policy can use.
+
     def describe(self) -> str:
         return f"{self.name} (window {self.window_s:g}s, {'holds' if self.holds_checkins else 'accepts on arrival'})"
 
@@ -141,6 +174,10 @@ class Lottery(SelectionPolicy):
     def __init__(self, window: float = 20.0):
         self.window_s = float(window)
 
+    def rank(self, candidates: Candidates, round: RoundView, rng: np.random.Generator) -> np.ndarray:
+        # A uniformly random order: the first `needed` eligible in it are a uniform draw.
+        return rng.random(len(candidates))
+
     def choose(self, candidates: Candidates, round: RoundView, rng: np.random.Generator) -> np.ndarray:
         take = min(round.needed, len(candidates))
         return np.sort(rng.choice(len(candidates), size=take, replace=False))
@@ -158,6 +195,12 @@ class QuickFinish(SelectionPolicy):
     def __init__(self, window: float = 20.0, max_predicted: float | None = None):
         self.window_s = float(window)
         self.max_predicted = max_predicted
+
+    def rank(self, candidates: Candidates, round: RoundView, rng: np.random.Generator) -> np.ndarray:
+        key = candidates.predicted_s.astype(float)
+        if self.max_predicted is not None:
+            key = np.where(key <= self.max_predicted, key, np.inf)
+        return key
 
     def choose(self, candidates: Candidates, round: RoundView, rng: np.random.Generator) -> np.ndarray:
         order = np.argsort(candidates.predicted_s, kind="stable")
@@ -208,6 +251,9 @@ class RestedFirst(SelectionPolicy):
 
     def __init__(self, window: float = 20.0):
         self.window_s = float(window)
+
+    def rank(self, candidates: Candidates, round: RoundView, rng: np.random.Generator) -> np.ndarray:
+        return candidates.last_participation_s
 
     def choose(self, candidates: Candidates, round: RoundView, rng: np.random.Generator) -> np.ndarray:
         order = np.argsort(candidates.last_participation_s, kind="stable")

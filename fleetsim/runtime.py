@@ -70,7 +70,11 @@ class FleetRuntime:
     # ------------------------------------------------------------------ check-in ticks
 
     def ticks(self, start: float, end: float) -> tuple[np.ndarray, np.ndarray]:
-        """Devices whose check-in tick falls in [start, end), and the tick times, unsorted."""
+        """Devices whose check-in tick falls in [start, end), and the tick times, in time order.
+
+        Within one period the slice from ``lo`` up is in phase (hence time) order and the
+        wrapped slice from 0 comes after it; successive periods follow each other.
+        """
         period = self.checkin_every
         devices, times = [], []
         a = start
@@ -98,45 +102,53 @@ class FleetRuntime:
         params = np.where(charging[:, None], self.beta_charging[types], self.beta_unplugged[types])
         return 100.0 * rng.beta(params[:, 0], params[:, 1])
 
-    def checkins(self, start: float, end: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-        """Eligible check-ins in [start, end), sorted by time: devices, times, battery %, charging.
-
-        Observes the signals it needs and records them (the run's history moves forward).
-        """
-        rng = self.rngs["checkin"]
+    def free_ticks(self, start: float, end: float) -> tuple[np.ndarray, np.ndarray]:
+        """Ticks in [start, end) of devices that could check in (memory fits, not busy or
+        resting), sorted by time. Nothing is observed."""
         devices, times = self.ticks(start, end)
         keep = self.capable[devices] & (self.free_at[devices] <= times)
-        devices, times = devices[keep], times[keep]
+        return devices[keep], times[keep]
+
+    def eligible(
+        self, devices: np.ndarray, times: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """Of these ticks, the ones whose device is eligible: positions, battery %, charging.
+
+        Observes the signals it needs at the tick times and records them (the run's history
+        moves forward); draws the battery level seen at check-in.
+        """
+        rng = self.rngs["checkin"]
+        live = np.arange(devices.size)
         for s in self.required:
-            on = self.signals.observe(devices, s, times, rng)
-            devices, times = devices[on], times[on]
+            on = self.signals.observe(devices[live], s, times[live], rng)
+            live = live[on]
         if _CHARGING in self.required:
-            charging = np.ones(devices.size, dtype=bool)
+            charging = np.ones(live.size, dtype=bool)
         else:
-            charging = self.signals.observe(devices, _CHARGING, times, rng)
-        battery = self._battery(devices, charging, self.rngs["battery"])
+            charging = self.signals.observe(devices[live], _CHARGING, times[live], rng)
+        battery = self._battery(devices[live], charging, self.rngs["battery"])
         ok = battery >= self.min_battery
-        devices, times, battery, charging = devices[ok], times[ok], battery[ok], charging[ok]
-        order = np.argsort(times, kind="stable")
-        self.checkins_seen += devices.size
-        return devices[order], times[order], battery[order], charging[order]
+        self.checkins_seen += int(ok.sum())
+        return live[ok], battery[ok], charging[ok]
+
+    def checkins(self, start: float, end: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """Eligible check-ins in [start, end), sorted by time: devices, times, battery %, charging."""
+        devices, times = self.free_ticks(start, end)
+        live, battery, charging = self.eligible(devices, times)
+        return devices[live], times[live], battery, charging
 
     def candidates(self, devices: np.ndarray, times: np.ndarray, battery: np.ndarray, charging: np.ndarray) -> Candidates:
+        """The check-ins as a policy sees them (per-device traits gathered on demand)."""
         fleet = self.fleet
-        return Candidates(
-            device=devices,
-            checkin_s=times,
-            device_type=fleet.device_type[devices],
-            region=fleet.region[devices],
-            samples=fleet.samples[devices],
-            predicted_s=self.predicted_s[devices],
-            battery_pct=battery,
-            charging=charging,
-            last_participation_s=self.last_participation[devices],
-            participations=self.participations[devices],
-            type_names=fleet.type_names,
-            region_names=fleet.region_names,
-        )
+        arrays = {
+            "device_type": fleet.device_type,
+            "region": fleet.region,
+            "samples": fleet.samples,
+            "predicted_s": self.predicted_s,
+            "last_participation_s": self.last_participation,
+            "participations": self.participations,
+        }
+        return Candidates(devices, times, battery, charging, arrays, fleet.type_names, fleet.region_names)
 
     # ------------------------------------------------------------------ measurement
 

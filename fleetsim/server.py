@@ -65,7 +65,8 @@ class RoundServer:
             (d.start, d.start + d.duration) for d in config.disruptions if d.kind == "server-outage"
         )
         self.round_index = 0
-        self._rate = None  # eligible check-ins per second seen lately (sizes arrival windows)
+        self._rate: float | None = None  # eligible check-ins per second seen lately (sizes arrival windows)
+        self._eligible_share = 0.1  # share of free ticks found eligible lately (sizes ranked batches)
         self._mean_on = np.array(
             [[config.fleet.device_types[t].signals[s].mean_on for t in fleet.type_names] for s in SIGNALS]
         )  # [S, types]
@@ -119,13 +120,6 @@ class RoundServer:
                 # Causal policies: a window long enough for the needed check-ins, no longer.
                 length = min(length, max(1.0, 2.0 * needed / self._rate))
             end = min(t + length, timeout_at)
-            devices, times, battery, charging = runtime.checkins(t, end)
-            checkins += devices.size
-            if end > t and devices.size:
-                self._rate = max(devices.size / (end - t), 1e-3)
-            if devices.size == 0:
-                t = end
-                continue
             view = RoundView(
                 round_index=self.round_index,
                 opened_s=opened,
@@ -136,6 +130,13 @@ class RoundServer:
                 accepted_by_type=by_type.copy(),
                 type_shares=self.type_shares,
             )
+            devices, times, battery, charging = self._window(t, end, view, rng)
+            checkins += devices.size
+            if end > t and devices.size:
+                self._rate = max(devices.size / (end - t), 1e-3)
+            if devices.size == 0:
+                t = end
+                continue
             candidates = runtime.candidates(devices, times, battery, charging)
             chosen = np.asarray(policy.choose(candidates, view, rng), dtype=np.int64)
             if chosen.size > needed or (chosen.size and (chosen.min() < 0 or chosen.max() >= devices.size)) \
@@ -159,6 +160,58 @@ class RoundServer:
             return empty.astype(np.int64), empty, empty, empty, empty.astype(bool), timeout_at, checkins
         devices, checkin, at, battery, charging = (np.concatenate(parts) for parts in zip(*chunks, strict=True))
         return devices, checkin, at, battery, charging, selected_at, checkins
+
+    def _window(
+        self, start: float, end: float, view: RoundView, rng: np.random.Generator
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """The eligible check-ins of one collection window, in check-in order.
+
+        A policy that ranks check-ins before eligibility is known (``rank``) gets only as many
+        as it can use: ticks are looked at in rank order until enough are eligible. The policy
+        then chooses among a set that holds its top choices, which gives the same outcome as
+        showing it every eligible check-in, at a cost that does not grow with the fleet.
+        """
+        runtime = self.runtime
+        devices, times = runtime.free_ticks(start, end)
+        ranker = getattr(self.policy, "rank", None)
+        key = None
+        if ranker is not None and devices.size:
+            blank = runtime.candidates(devices, times, np.full(devices.size, np.nan), np.zeros(devices.size, bool))
+            key = ranker(blank, view, rng)
+        if key is None:
+            live, battery, charging = runtime.eligible(devices, times)
+            return devices[live], times[live], battery, charging
+        key = np.asarray(key, dtype=float)
+        remaining = np.flatnonzero(key < np.inf)  # +inf: never chosen (-inf ranks first)
+        found: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
+        count = 0
+        while remaining.size and count < view.needed:
+            size = max(64, int(2.0 * (view.needed - count) / self._eligible_share))
+            if size < remaining.size:
+                # The `size` lowest keys (ties by check-in order), without sorting the rest.
+                part = np.argpartition(key[remaining], size - 1)
+                top = remaining[part[:size]]
+                cut = key[remaining[part[size - 1]]]
+                tied = remaining[part[size:]][key[remaining[part[size:]]] == cut]
+                if tied.size:  # keep tie order stable: the earliest check-ins of the cut key
+                    low = top[key[top] < cut]
+                    at_cut = np.sort(np.concatenate([top[key[top] == cut], tied]))
+                    top = np.concatenate([low, at_cut[: size - low.size]])
+                batch = np.sort(top)
+                remaining = np.setdiff1d(remaining, batch, assume_unique=True)
+            else:
+                batch, remaining = remaining, remaining[:0]
+            live, battery, charging = runtime.eligible(devices[batch], times[batch])
+            self._eligible_share = min(1.0, max(live.size / batch.size, 0.01))
+            found.append((batch[live], battery, charging))
+            count += live.size
+        if not found:
+            empty = np.empty(0)
+            return empty.astype(np.int64), empty, empty, empty.astype(bool)
+        positions, battery, charging = (np.concatenate(parts) for parts in zip(*found, strict=True))
+        in_time = np.argsort(positions, kind="stable")
+        positions = positions[in_time]
+        return devices[positions], times[positions], battery[in_time], charging[in_time]
 
     def _round(self, opened: float) -> float:
         """Run one round from ``opened``; log it; return its close time."""

@@ -1,0 +1,164 @@
+"""Reading a run folder for the report: summary, configuration, event log and tables.
+
+The report reads only what :func:`fleetsim.output.write_run` wrote (DESIGN: reports read
+only the event log and tables). Every problem is a :class:`~fleetsim.errors.FleetsimError`
+whose one-line message names the file and what is wrong with it.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+
+from ..errors import FleetsimError
+from ..output import read_summary
+
+__all__ = ["RunFolder", "read_run_folder"]
+
+# Columns holding names (from the fleet file or the metrics): read as text, never as numbers
+# or missing values, so a region called "NA" or "1" stays exactly what the fleet file says.
+_TEXT_COLUMNS = {"device_type", "region", "data_quartile", "cause", "phase", "status", "hour_utc", "opened_utc"}
+
+# Every table the report reads, with the columns it needs.
+_TABLE_COLUMNS: dict[str, tuple[str, ...]] = {
+    "hourly": ("hour", "hour_utc", "committed", "failed", "abandoned", "eligible", "checkins_per_s",
+               "accepted", "peak_working"),
+    "rounds": ("round", "status", "selection_s", "report_s", "duration_s"),
+    "waste_by_cause": ("cause", "compute_s", "bytes", "energy_wh", "participations", "compute_share"),
+    "waste_by_device_type": ("device_type", "compute_s", "wasted_compute_s", "bytes", "wasted_bytes",
+                             "energy_wh", "wasted_energy_wh", "compute_fraction", "bytes_fraction",
+                             "energy_fraction"),
+    "participation_counts": ("reports", "devices"),
+    "dropouts": ("cause", "phase", "dropouts"),
+    "device_cost": ("device_type", "participations", "battery_pct_p50", "battery_pct_p90",
+                    "megabytes_p50", "megabytes_p90", "energy_wh_mean"),
+}
+_BIAS_COLUMNS = ("devices", "fleet_share", "eligible_share", "accepted_share", "report_share", "weight_share",
+                 "representation_ratio", "ratio_low", "ratio_high", "accepted", "reports", "never_share")
+BIAS_GROUPINGS = {"device_type": "bias_by_device_type", "region": "bias_by_region",
+                  "data_quartile": "bias_by_data_quartile"}
+"""Grouping column -> table name of the participation-bias tables."""
+
+for _key, _name in BIAS_GROUPINGS.items():
+    _TABLE_COLUMNS[_name] = (_key, *_BIAS_COLUMNS)
+
+_EVENT_COLUMNS = ("device_type", "outcome", "accepted_s", "ended_s")
+
+_SUMMARY_KEYS = (
+    "scenario", "seed", "config_hash", "policy", "devices", "horizon_start", "simulated_hours", "caution",
+    "rounds.attempted", "rounds.committed", "rounds.failed", "rounds.abandoned", "rounds.outage",
+    "rounds.committed_per_hour", "rounds.selection_s", "rounds.report_s", "rounds.duration_s",
+    "participations.accepted", "participations.used_reports",
+    "waste.compute_fraction", "waste.bytes_fraction", "waste.energy_fraction",
+    "bias.coverage", "bias.gini", "bias.chi_square", "bias.chi_square_p",
+    "load.peak_working", "load.mean_working", "load.checkins_per_s_peak_hour",
+)
+_CONFIG_KEYS = ("horizon.start", "horizon.duration", "fleet.devices", "workload", "rounds.target_reports",
+                "rounds.over_selection", "rounds.selection_timeout", "rounds.report_deadline",
+                "rounds.checkin_every", "selection.policy")
+
+
+@dataclass(frozen=True)
+class RunFolder:
+    """The parts of a run folder the report uses.
+
+    ``events`` holds only the event-log columns the report needs (device_type, outcome,
+    accepted_s, ended_s); ``tables`` maps a table name (``hourly``, ``bias_by_region``, ...)
+    to its DataFrame as written under ``tables/``.
+    """
+
+    path: Path
+    summary: dict[str, Any]
+    config: dict[str, Any]
+    events: pd.DataFrame
+    tables: dict[str, pd.DataFrame]
+
+    @property
+    def type_names(self) -> list[str]:
+        return list(self.tables["bias_by_device_type"]["device_type"])
+
+    @property
+    def region_names(self) -> list[str]:
+        return list(self.tables["bias_by_region"]["region"])
+
+
+def _lookup(mapping: dict[str, Any], dotted: str) -> Any:
+    value: Any = mapping
+    for part in dotted.split("."):
+        if not isinstance(value, dict) or part not in value:
+            raise KeyError(dotted)
+        value = value[part]
+    return value
+
+
+def _read_json(path: Path, keys: tuple[str, ...], folder: Path) -> dict[str, Any]:
+    if path.name == "summary.json":
+        data = read_summary(folder)
+    else:
+        try:
+            data = json.loads(path.read_text(encoding="utf-8"))
+        except OSError as exc:
+            raise FleetsimError(f"{path}: cannot read ({exc.strerror or exc}); is {folder} a run folder?") from None
+        except json.JSONDecodeError as exc:
+            raise FleetsimError(f"{path}: not valid JSON ({exc.msg} at line {exc.lineno})") from None
+    if not isinstance(data, dict):
+        raise FleetsimError(f"{path}: expected a JSON object; is {folder} a run folder?")
+    for key in keys:
+        try:
+            _lookup(data, key)
+        except KeyError:
+            raise FleetsimError(f"{path}: lacks '{key}'; was it written by this version of fleetsim?") from None
+    return data
+
+
+def _read_table(path: Path, columns: tuple[str, ...]) -> pd.DataFrame:
+    try:
+        header = pd.read_csv(path, nrows=0).columns
+        text = {c: str for c in header if c in _TEXT_COLUMNS}
+        # Only empty fields are missing values: pandas would otherwise read a name such as
+        # "NA" or "null" as NaN.
+        missing = {c: [""] for c in header if c not in _TEXT_COLUMNS}
+        table = pd.read_csv(path, dtype=text, keep_default_na=False, na_values=missing)
+    except FileNotFoundError:
+        raise FleetsimError(f"{path}: missing; is {path.parent.parent} a run folder?") from None
+    except (OSError, ValueError, pd.errors.ParserError) as exc:
+        raise FleetsimError(f"{path}: cannot read the table ({' '.join(str(exc).split())})") from None
+    lacking = [c for c in columns if c not in table.columns]
+    if lacking:
+        raise FleetsimError(f"{path}: lacks column(s) {', '.join(lacking)}")
+    return table
+
+
+def _read_events(path: Path) -> pd.DataFrame:
+    try:
+        events = pd.read_parquet(path, columns=list(_EVENT_COLUMNS))
+    except FileNotFoundError:
+        raise FleetsimError(f"{path}: missing; is {path.parent} a run folder?") from None
+    except Exception as exc:  # pyarrow raises several kinds (ArrowInvalid, ArrowTypeError, KeyError)
+        raise FleetsimError(f"{path}: cannot read the event log ({' '.join(str(exc).split())})") from None
+    events["device_type"] = events["device_type"].astype(str)
+    events["outcome"] = events["outcome"].astype(str)
+    return events
+
+
+def read_run_folder(folder: str | Path) -> RunFolder:
+    """Read and check a run folder; raises FleetsimError naming the first problem found."""
+    path = Path(folder)
+    if not path.exists():
+        raise FleetsimError(f"{path}: no such folder")
+    if not path.is_dir():
+        raise FleetsimError(f"{path}: not a folder (expected a run folder written by 'fleetsim run')")
+    summary = _read_json(path / "summary.json", _SUMMARY_KEYS, path)
+    config = _read_json(path / "config.json", _CONFIG_KEYS, path)
+    tables = {name: _read_table(path / "tables" / f"{name}.csv", cols) for name, cols in _TABLE_COLUMNS.items()}
+    events = _read_events(path / "events.parquet")
+    hourly = tables["hourly"]
+    regions = list(tables["bias_by_region"]["region"])
+    lacking = [f"eligible:{r}" for r in regions if f"eligible:{r}" not in hourly.columns]
+    if lacking:
+        raise FleetsimError(f"{path / 'tables' / 'hourly.csv'}: lacks column(s) {', '.join(lacking)}")
+    return RunFolder(path=path, summary=summary, config=config, events=events, tables=tables)

@@ -1,0 +1,130 @@
+"""The report's colours, each with one meaning in every figure, and the figure style.
+
+The eight hues are the colour-blind-safe set of M. Okabe and K. Ito, "Color Universal
+Design" (2008; cited from memory), plus a neutral grey. The page's own chrome (text, rules,
+panels) uses only greys, so a hue on the page always means what :data:`MEANINGS` says.
+"""
+
+from __future__ import annotations
+
+import io
+import re
+from collections.abc import Iterator
+from contextlib import contextmanager
+from typing import Any
+
+import matplotlib
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
+
+__all__ = ["COLOURS", "MEANINGS", "INK", "MUTED", "figure", "svg_of", "short"]
+
+COLOURS = {
+    "committed": "#009E73",  # bluish green
+    "failed": "#D55E00",     # vermillion
+    "abandoned": "#E69F00",  # orange
+    "outage": "#000000",     # black
+    "eligible": "#56B4E9",   # sky blue
+    "accepted": "#0072B2",   # blue
+    "wasted": "#CC79A7",     # reddish purple
+    "weight": "#F0E442",     # yellow (drawn with a dark edge: it is pale on white)
+    "fleet": "#A0A0A0",      # neutral grey
+}
+
+MEANINGS = {
+    "committed": "reports used by a committed round, and the rounds that committed",
+    "failed": "rounds that closed with too few reports",
+    "abandoned": "rounds abandoned at the selection timeout with too few devices",
+    "outage": "rounds lost to a server outage",
+    "eligible": "eligible devices (and the check-ins they make)",
+    "accepted": "accepted devices and the tasks they run",
+    "wasted": "device work no committed round used (straggler waste)",
+    "weight": "aggregation weight (FedAvg weights each update by its sample count)",
+    "fleet": "the whole fleet, devices that never reported, and other groups for comparison",
+}
+
+INK = "#1f2933"
+"""Text, axes and reference lines (percentiles, limits)."""
+
+MUTED = "#616e7c"
+WEIGHT_EDGE = "#7a6f00"
+
+_RC: Any = {
+    "font.family": "sans-serif",
+    "font.sans-serif": ["DejaVu Sans"],
+    "font.size": 9.5,
+    "axes.titlesize": 10,
+    "axes.titleweight": "bold",
+    "axes.titlelocation": "left",
+    "axes.labelsize": 9,
+    "axes.labelcolor": INK,
+    "axes.edgecolor": "#9aa5b1",
+    "axes.linewidth": 0.8,
+    "axes.spines.top": False,
+    "axes.spines.right": False,
+    "axes.grid": True,
+    "axes.axisbelow": True,
+    "grid.color": "#e4e7eb",
+    "grid.linewidth": 0.7,
+    "xtick.color": MUTED,
+    "ytick.color": MUTED,
+    "xtick.labelcolor": INK,
+    "ytick.labelcolor": INK,
+    "xtick.labelsize": 8.5,
+    "ytick.labelsize": 8.5,
+    "legend.frameon": False,
+    "legend.fontsize": 8.5,
+    "text.color": INK,
+    # Names come from the fleet file: never read "$...$" in them as mathtext.
+    "text.parse_math": False,
+    "text.usetex": False,
+    # Text stays text: small files, searchable and selectable, read by screen readers. matplotlib
+    # escapes it (& < >) on output; a browser without DejaVu Sans falls back to a narrower sans.
+    "svg.fonttype": "none",
+    "svg.hashsalt": "fleetsim-report",  # stable ids: the same run folder gives the same file
+    "svg.image_inline": True,
+}
+
+FIGURE_WIDTH_IN = 9.0
+
+
+@contextmanager
+def figure(height_in: float, width_in: float = FIGURE_WIDTH_IN) -> Iterator[Figure]:
+    """A matplotlib Figure on an Agg canvas with the report's style (no global pyplot state)."""
+    with matplotlib.rc_context(_RC):
+        fig = Figure(figsize=(width_in, height_in), layout="constrained")
+        FigureCanvasAgg(fig)
+        yield fig
+
+
+_ID = re.compile(r'\bid="([^"]+)"')
+_HREF = re.compile(r'(xlink:href|href)="#([^"]+)"')
+_URL = re.compile(r"url\(#([^)]+)\)")
+_COMMENT = re.compile(r"<!--.*?-->", re.DOTALL)
+
+
+def svg_of(fig: Figure, prefix: str) -> str:
+    """The figure as an ``<svg>`` element ready to inline in HTML.
+
+    The XML prolog, DOCTYPE, metadata and comments are dropped (matplotlib's comments repeat
+    label text); every id gets ``prefix`` so several figures on one page never share an id;
+    fixed width and height give way to the viewBox so the figure scales with the page.
+    """
+    with matplotlib.rc_context(_RC):
+        buffer = io.StringIO()
+        fig.savefig(buffer, format="svg", metadata={"Date": None, "Creator": None, "Format": None, "Type": None})
+    text = buffer.getvalue()
+    text = text[text.index("<svg"):]
+    text = _COMMENT.sub("", text)
+    text = _ID.sub(lambda m: f'id="{prefix}-{m.group(1)}"', text)
+    text = _HREF.sub(lambda m: f'{m.group(1)}="#{prefix}-{m.group(2)}"', text)
+    text = _URL.sub(lambda m: f"url(#{prefix}-{m.group(1)})", text)
+    head_end = text.index(">")
+    head = re.sub(r'\s(width|height)="[^"]*"', "", text[:head_end])
+    return head + text[head_end:]
+
+
+def short(name: str, limit: int = 34) -> str:
+    """A name cut to ``limit`` characters for figure labels (tables show it whole)."""
+    name = " ".join(str(name).split())
+    return name if len(name) <= limit else name[: limit - 1] + "\u2026"

@@ -1,0 +1,154 @@
+"""A sweep's frontier plot and heat maps, drawn with matplotlib's Agg canvas (no display).
+
+Figures are built as ``matplotlib.figure.Figure`` objects, never through pyplot, so no
+global state or GUI backend is touched and plotting is safe in any process.
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
+
+from .table import WORST_REPRESENTATION, direction_of
+
+if TYPE_CHECKING:
+    from .sweep import SweepResult
+
+__all__ = ["frontier_plot", "heat_map"]
+
+
+def _stats(result: SweepResult, metric: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Mean, low and high of ``metric`` per cell, in cell order."""
+    rows = result.cell_means[result.cell_means["metric"] == metric].set_index("cell")
+    cells = [c.index for c in result.grid]
+    rows = rows.reindex(cells)
+    return (rows["mean"].to_numpy(dtype=float), rows["low"].to_numpy(dtype=float),
+            rows["high"].to_numpy(dtype=float))
+
+
+def _errors(mean: np.ndarray, low: np.ndarray, high: np.ndarray) -> np.ndarray:
+    return np.nan_to_num(np.vstack([mean - low, high - mean]), nan=0.0)
+
+
+def frontier_plot(result: SweepResult, path: Path, fmt: str = "png") -> None:
+    """Committed rounds per hour (x) against compute waste fraction (y) for every cell, coloured
+    by worst representation; front cells outlined and numbered, the recommendation starred.
+    Bars are 95% intervals across seeds."""
+    x, xl, xh = _stats(result, "rounds.committed_per_hour")
+    y, yl, yh = _stats(result, "waste.compute_fraction")
+    c, _, _ = _stats(result, WORST_REPRESENTATION)
+    figure = Figure(figsize=(7.5, 5.5), layout="constrained")
+    FigureCanvasAgg(figure)
+    ax = figure.subplots()
+    ax.errorbar(x, y, xerr=_errors(x, xl, xh), yerr=_errors(y, yl, yh), fmt="none",
+                ecolor="0.75", elinewidth=0.8, zorder=1)
+    on_front = np.array([cell.index in result.front for cell in result.grid])
+    colour = np.where(np.isfinite(c), c, 0.0)
+    points = ax.scatter(x[~on_front], y[~on_front], c=colour[~on_front], cmap="viridis", vmin=0, vmax=1,
+                        s=36, alpha=0.6, zorder=2, label="other settings")
+    ax.scatter(x[on_front], y[on_front], c=colour[on_front], cmap="viridis", vmin=0, vmax=1,
+               s=90, edgecolors="black", linewidths=1.2, zorder=3, label="Pareto front")
+    for i, cell in enumerate(result.grid):
+        if on_front[i] and math.isfinite(x[i]) and math.isfinite(y[i]):
+            ax.annotate(str(cell.index), (x[i], y[i]), xytext=(5, 5), textcoords="offset points", fontsize=8)
+    rec = result.recommendation.cell
+    if rec is not None:
+        i = [cell.index for cell in result.grid].index(rec)
+        ax.scatter([x[i]], [y[i]], marker="*", s=320, facecolors="none", edgecolors="crimson",
+                   linewidths=1.5, zorder=4, label=f"recommended: {result.recommendation.label}")
+    figure.colorbar(points, ax=ax, label="worst representation, min over types of min(r, 1/r)")
+    _fit_to_means(ax, x, y)
+    ax.set_xlabel("committed rounds per hour (higher is better)")
+    ax.set_ylabel("straggler waste, fraction of compute (lower is better)")
+    ax.set_title(f"{len(result.grid)} settings x {len(result.seeds)} seeds; numbers are cell indices; "
+                 "bars are 95% intervals (clipped to the view)", fontsize=9)
+    ax.legend(loc="best", fontsize=8)
+    ax.grid(True, alpha=0.3)
+    figure.savefig(path, format=fmt, dpi=110)
+
+
+def _fit_to_means(ax: object, x: np.ndarray, y: np.ndarray) -> None:
+    """Frame the means (not the interval bars, which may be far wider with few seeds)."""
+    for values, setter in ((x, ax.set_xlim), (y, ax.set_ylim)):  # type: ignore[attr-defined]
+        finite = values[np.isfinite(values)]
+        if finite.size == 0:
+            continue
+        low, high = float(finite.min()), float(finite.max())
+        pad = 0.15 * (high - low) if high > low else 0.1 * max(abs(high), 1e-3)
+        setter(low - pad, high + pad)
+
+
+def _slice(result: SweepResult) -> dict[str, object]:
+    """Values of the axes beyond the first two: those of the recommended cell (else cell 0)."""
+    chosen = result.recommendation.cell if result.recommendation.cell is not None else result.grid[0].index
+    cell = next(c for c in result.grid if c.index == chosen)
+    return dict(cell.settings[2:])
+
+
+def heat_map(result: SweepResult, metric: str, path: Path, fmt: str = "png") -> None:
+    """Mean of ``metric`` over the first varied key (columns) and the second (rows).
+
+    With one varied key the map is a single row; with more than two, the others are held at
+    the recommended cell's values (named in the title). Brighter is better where the metric
+    has a direction; neutral metrics use a neutral palette.
+    """
+    mean, _, _ = _stats(result, metric)
+    by_cell = {cell.index: mean[i] for i, cell in enumerate(result.grid)}
+    first = result.axes[0]
+    second = result.axes[1] if len(result.axes) > 1 else None
+    held = _slice(result)
+    grid = np.full((len(second.values) if second else 1, len(first.values)), np.nan)
+    for cell in result.grid:
+        settings = dict(cell.settings)
+        if any(settings[k] != v for k, v in held.items()):
+            continue
+        col = first.values.index(settings[first.key])
+        row = second.values.index(settings[second.key]) if second else 0
+        grid[row, col] = by_cell[cell.index]
+    direction = direction_of(metric)
+    cmap = {"higher": "viridis", "lower": "viridis_r", "closer-to-1": "viridis_r", None: "cividis"}[direction]
+    if direction == "closer-to-1":
+        shown = np.abs(np.log(np.where(grid > 0, grid, np.nan)))
+        note = "colour: distance from 1 on the log scale, brighter is closer"
+    else:
+        shown = grid
+        notes = {"higher": "brighter is better", "lower": "brighter is better (lower)", None: "neutral metric"}
+        note = notes[direction]
+    figure = Figure(figsize=(1.2 + 1.1 * len(first.values), 1.6 + 0.7 * grid.shape[0]), layout="constrained")
+    FigureCanvasAgg(figure)
+    ax = figure.subplots()
+    image = ax.imshow(np.ma.masked_invalid(shown), cmap=cmap, aspect="auto")
+    finite = grid[np.isfinite(grid)]
+    scale = np.nanmax(np.abs(finite)) if finite.size else 1.0
+    for (row, col), value in np.ndenumerate(grid):
+        text = "n/a" if not math.isfinite(value) else f"{value:.3g}" if scale < 1e4 else f"{value:.3e}"
+        ax.text(col, row, text, ha="center", va="center", fontsize=8, color="white",
+                path_effects=_outline())
+    ax.set_xticks(range(len(first.values)), [_tick(v) for v in first.values], fontsize=8)
+    ax.set_xlabel(first.key)
+    if second:
+        ax.set_yticks(range(len(second.values)), [_tick(v) for v in second.values], fontsize=8)
+        ax.set_ylabel(second.key)
+    else:
+        ax.set_yticks([])
+    title = f"{metric} (mean over {len(result.seeds)} seeds)\n{note}"
+    if held:
+        title += "\nheld at " + ", ".join(f"{k}={_tick(v)}" for k, v in held.items())
+    ax.set_title(title, fontsize=9)
+    figure.colorbar(image, ax=ax)
+    figure.savefig(path, format=fmt, dpi=110)
+
+
+def _tick(value: object) -> str:
+    return f"{value:g}" if isinstance(value, float) else str(value)
+
+
+def _outline() -> list[object]:
+    from matplotlib import patheffects
+
+    return [patheffects.withStroke(linewidth=2, foreground="black")]

@@ -1,0 +1,279 @@
+"""What a study varies: the fleet file it starts from, the axes of a sweep, the settings of a
+comparison's arms, and stress files of disruptions.
+
+Every setting is a ``key.path=value`` override applied to the fleet file's own mapping and
+validated by :func:`fleetsim.config.build_config`, so a bad value is reported with the file
+and key path exactly as ``fleetsim run --set`` would, prefixed by the option that gave it.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+from ..config import Config, build_config, load_config
+from ..errors import ConfigError
+from ..policies import make_policy
+from ..units import parse_duration, parse_size
+
+__all__ = [
+    "FleetFile",
+    "Axis",
+    "Cell",
+    "parse_axis",
+    "parse_assignment",
+    "grid_cells",
+    "read_stress",
+    "MAX_AXIS_VALUES",
+]
+
+MAX_AXIS_VALUES = 10_000
+"""Most values one ``--vary`` may produce (a guard against a mistyped range step)."""
+
+
+@dataclass(frozen=True)
+class FleetFile:
+    """A fleet file's raw mapping, where it came from, and the overrides applied to every run.
+
+    ``raw`` is the YAML mapping as read (never mutated); ``overrides`` are ``key.path=value``
+    strings applied before each cell's own. Build with :meth:`read`.
+    """
+
+    raw: dict[str, Any]
+    source: str
+    overrides: tuple[str, ...] = ()
+    stress_source: str | None = None
+
+    @classmethod
+    def read(cls, path: str | Path, overrides: Sequence[str] = ()) -> FleetFile:
+        """Read and validate a fleet file with ``overrides``.
+
+        Raises ConfigError (naming the file and key path) when the file cannot be read, is not
+        YAML, or does not validate with the overrides applied.
+        """
+        path = Path(path)
+        load_config(path, list(overrides))  # every reading and validation error, worded once
+        raw = yaml.safe_load(path.read_text(encoding="utf-8"))
+        return cls(raw=raw, source=str(path), overrides=tuple(overrides))
+
+    def config(self, extra: Sequence[str] = ()) -> Config:
+        """The validated configuration with the base overrides, then ``extra``, applied.
+
+        Raises ConfigError naming the file and key path.
+        """
+        return build_config(self.raw, source=self.source, overrides=[*self.overrides, *extra])
+
+    def with_stress(self, path: str | Path) -> FleetFile:
+        """This file with the disruptions of the stress file ``path`` appended.
+
+        Raises ConfigError naming the stress file and the key path within it.
+        """
+        events = read_stress(path, self)
+        raw = dict(self.raw)
+        raw["disruptions"] = list(self.raw.get("disruptions") or []) + events
+        return FleetFile(raw=raw, source=self.source, overrides=self.overrides, stress_source=str(path))
+
+
+def read_stress(path: str | Path, base: FleetFile) -> list[dict[str, Any]]:
+    """The ``disruptions`` list of a stress file, validated against ``base``'s fleet.
+
+    A stress file is YAML holding one key, ``disruptions``: a list of disruption events in the
+    fleet file's own format (docs/fleet-file.md). Raises ConfigError naming the stress file and
+    the key path (``disruptions.0.factor``) of each problem.
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise ConfigError([f"{path}: cannot read the stress file ({exc.strerror or exc})"]) from None
+    try:
+        data = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
+        problem = getattr(exc, "problem", None) or str(exc).splitlines()[0]
+        raise ConfigError([f"{path}: not valid YAML{where}: {problem}"]) from None
+    if not isinstance(data, dict) or "disruptions" not in data:
+        raise ConfigError([f"{path}: expected a mapping with a 'disruptions' list at the top level"])
+    extra = [key for key in data if key != "disruptions"]
+    if extra:
+        raise ConfigError([f"{path}: {key}: unknown key; a stress file holds only 'disruptions'" for key in extra])
+    events = data["disruptions"]
+    if not isinstance(events, list) or not events:
+        raise ConfigError([f"{path}: disruptions: expected a non-empty list of disruption events"])
+    # Validate the events alone against the base fleet, so each problem names its own index.
+    alone = dict(base.raw)
+    alone["disruptions"] = events
+    kept = [item for item in base.overrides if not item.strip().startswith("disruptions")]
+    build_config(alone, source=str(path), overrides=kept)
+    return events
+
+
+@dataclass(frozen=True)
+class Axis:
+    """One varied key of a sweep and its values, in the order given."""
+
+    key: str
+    values: tuple[Any, ...]
+
+    def override(self, value: Any) -> str:
+        return f"{self.key}={_yaml_scalar(value)}"
+
+
+@dataclass(frozen=True)
+class Cell:
+    """One setting of a sweep's grid: its index, the value of each axis, and a label of
+    ``key=value`` pairs (each key shortened to its last part unless that is ambiguous)."""
+
+    index: int
+    settings: tuple[tuple[str, Any], ...]
+    overrides: tuple[str, ...] = field(default=())
+    label: str = ""
+
+
+def _show(value: Any) -> str:
+    if isinstance(value, float):
+        return f"{value:g}"
+    return str(value)
+
+
+def _yaml_scalar(value: Any) -> str:
+    """Write ``value`` so that the override reads it back as the same value."""
+    if isinstance(value, str):
+        try:
+            if yaml.safe_load(value) == value:
+                return value
+        except yaml.YAMLError:
+            pass
+    text = yaml.safe_dump(value, default_flow_style=True).strip()
+    return text.removesuffix("\n...").strip()
+
+
+def parse_assignment(text: str, option: str) -> tuple[str, str]:
+    """Split ``key.path=value``; raises ConfigError naming ``option`` when malformed."""
+    key, sep, value = text.partition("=")
+    if not sep or not key.strip() or not value.strip():
+        raise ConfigError([f"{option} {text!r}: expected key.path=value"])
+    return key.strip(), value.strip()
+
+
+def _split_values(text: str) -> list[str]:
+    """Split on commas that are not inside brackets or quotes (so YAML lists stay whole)."""
+    items: list[str] = []
+    current: list[str] = []
+    depth, quote = 0, ""
+    for char in text:
+        if quote:
+            if char == quote:
+                quote = ""
+        elif char in "\"'":
+            quote = char
+        elif char in "[{":
+            depth += 1
+        elif char in "]}":
+            depth -= 1
+        elif char == "," and depth == 0:
+            items.append("".join(current).strip())
+            current = []
+            continue
+        current.append(char)
+    items.append("".join(current).strip())
+    return items
+
+
+def _range_parts(parts: list[str]) -> list[float] | None:
+    """Read start, stop, step as plain numbers, durations or sizes (all three alike)."""
+    for parser in (float, parse_duration, parse_size):
+        try:
+            return [float(parser(p)) for p in parts]  # type: ignore[operator]
+        except ValueError:
+            continue
+    return None
+
+
+def parse_axis(text: str) -> Axis:
+    """Read ``key.path=v1,v2,...`` or ``key.path=start:stop:step`` into an Axis.
+
+    List values are read as YAML scalars (``1.3``, ``lottery``, ``6m``). A range includes
+    ``stop`` when it falls on the grid; its parts may be numbers, durations (``2m:10m:2m``,
+    giving seconds) or sizes (``10MB:40MB:10MB``, giving bytes); whole numbers stay integers.
+    Raises ConfigError for a malformed option, an empty or repeated value, a zero or
+    wrong-signed step, or more than MAX_AXIS_VALUES values.
+    """
+    key, spec = parse_assignment(text, "--vary")
+    where = f"--vary {text!r}"
+    parts = spec.split(":")
+    if len(parts) == 3 and "," not in spec:
+        numbers = _range_parts(parts)
+        if numbers is None:
+            raise ConfigError([f"{where}: expected start:stop:step as numbers, durations or sizes"])
+        start, stop, step = numbers
+        if step == 0 or (stop - start) * step < 0:
+            raise ConfigError([f"{where}: step {parts[2]} never reaches {parts[1]} from {parts[0]}"])
+        count = math.floor((stop - start) / step + 1e-9) + 1
+        if count > MAX_AXIS_VALUES:
+            raise ConfigError([f"{where}: gives {count} values; at most {MAX_AXIS_VALUES}"])
+        whole = all(p.strip().lstrip("+-").isdigit() for p in parts)
+        values: list[Any] = []
+        for i in range(count):
+            v = float(f"{start + i * step:.12g}")
+            values.append(int(round(v)) if whole else v)
+    else:
+        values = []
+        for item in _split_values(spec):
+            if not item:
+                raise ConfigError([f"{where}: an empty value; separate values with single commas"])
+            try:
+                values.append(yaml.safe_load(item))
+            except yaml.YAMLError:
+                values.append(item)
+    seen: list[Any] = []
+    for value in values:
+        if value in seen:
+            raise ConfigError([f"{where}: {_show(value)} is listed twice"])
+        seen.append(value)
+    return Axis(key=key, values=tuple(values))
+
+
+def grid_cells(base: FleetFile, axes: Sequence[Axis]) -> list[tuple[Cell, Config]]:
+    """Every cell of the grid (first axis slowest) with its validated configuration.
+
+    Raises ConfigError for a key varied twice, or a cell whose settings do not validate or
+    whose selection policy cannot be built (each problem once, naming the first cell it
+    occurs in and how many more share it).
+    """
+    keys = [axis.key for axis in axes]
+    twice = sorted({k for k in keys if keys.count(k) > 1})
+    if twice:
+        raise ConfigError([f"--vary {k}: varied twice; give all its values in one --vary" for k in twice])
+    short = [k.rsplit(".", 1)[-1] for k in keys]
+    names = short if len(set(short)) == len(short) else keys
+    problems: dict[str, list[str]] = {}
+    cells: list[tuple[Cell, Config]] = []
+    for index, combo in enumerate(itertools.product(*(axis.values for axis in axes))):
+        settings = tuple(zip(keys, combo, strict=True))
+        overrides = tuple(axis.override(value) for axis, value in zip(axes, combo, strict=True))
+        label = ", ".join(f"{name}={_show(value)}" for name, value in zip(names, combo, strict=True))
+        cell = Cell(index=index, settings=settings, overrides=overrides, label=label)
+        try:
+            config = base.config(overrides)
+            make_policy(config.selection.policy, config.selection.params)
+        except ConfigError as exc:
+            for line in exc.problems:
+                problems.setdefault(line, []).append(cell.label)
+            continue
+        cells.append((cell, config))
+    if problems:
+        lines = []
+        for line, labels in problems.items():
+            more = f" (and {len(labels) - 1} more cells)" if len(labels) > 1 else ""
+            lines.append(f"--vary cell {labels[0]}{more}: {line}")
+        raise ConfigError(lines)
+    return cells
+

@@ -1,0 +1,134 @@
+"""Intervals across seeds and the seeds a paired comparison needs.
+
+- :func:`mean_interval`: Student t interval for a mean from n independent runs
+  (mean +- t_{(1+level)/2, n-1} s / sqrt(n); Student, Biometrika 6, 1908).
+- :func:`paired_interval`: the same interval on per-seed differences candidate - baseline
+  (the paired t interval; any textbook, e.g. Montgomery and Runger, Applied Statistics and
+  Probability for Engineers, section 10-4).
+- :func:`paired_power` and :func:`seeds_needed`: power of the two-sided paired t test from
+  the noncentral t distribution, power = P(|T'| > t_crit) with T' ~ t(n - 1, delta sqrt(n)
+  / sigma) (Cohen, Statistical Power Analysis for the Behavioral Sciences, 2nd ed., 1988,
+  ch. 2; the paired test is the one-sample test on differences). The references are cited
+  from memory.
+
+Values that are not finite (a metric a run could not measure) are left out; ``n`` says how
+many runs an interval rests on.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import stats
+
+__all__ = ["Interval", "mean_interval", "paired_interval", "paired_power", "seeds_needed", "LEVEL"]
+
+LEVEL = 0.95
+"""Confidence level of every interval a study reports."""
+
+
+@dataclass(frozen=True)
+class Interval:
+    """A mean of ``n`` values with its sample sd and two-sided interval [low, high].
+
+    With n < 2 the sd and the bounds are NaN; with every value equal the bounds equal the mean.
+    """
+
+    n: int
+    mean: float
+    sd: float
+    low: float
+    high: float
+
+    def excludes_zero(self) -> bool:
+        """True when the whole interval lies on one side of 0 (False if it is unknown)."""
+        if not (math.isfinite(self.low) and math.isfinite(self.high)):
+            return False
+        return self.low > 0 or self.high < 0
+
+    def contains(self, value: float) -> bool:
+        return bool(self.low <= value <= self.high)
+
+
+def mean_interval(values: np.ndarray | list[float], level: float = LEVEL) -> Interval:
+    """Student t interval for the mean of the finite ``values`` at ``level`` (default 95%).
+
+    Raises ValueError if ``level`` is not in (0, 1).
+    """
+    if not 0.0 < level < 1.0:
+        raise ValueError(f"level(={level}) must be in (0, 1)")
+    v = np.asarray(values, dtype=float)
+    v = v[np.isfinite(v)]
+    n = int(v.size)
+    if n == 0:
+        return Interval(0, math.nan, math.nan, math.nan, math.nan)
+    mean = float(v.mean())
+    if n == 1:
+        return Interval(1, mean, math.nan, math.nan, math.nan)
+    sd = float(v.std(ddof=1))
+    half = float(stats.t.ppf(0.5 + level / 2.0, n - 1)) * sd / math.sqrt(n)
+    return Interval(n, mean, sd, mean - half, mean + half)
+
+
+def paired_interval(baseline: np.ndarray | list[float], candidate: np.ndarray | list[float],
+                    level: float = LEVEL) -> Interval:
+    """Paired t interval for the mean of ``candidate - baseline`` (pairs with both finite).
+
+    Raises ValueError if the arrays differ in length.
+    """
+    b = np.asarray(baseline, dtype=float)
+    c = np.asarray(candidate, dtype=float)
+    if b.shape != c.shape:
+        raise ValueError(f"paired values need equal lengths, got {b.size} and {c.size}")
+    return mean_interval(c - b, level)
+
+
+def paired_power(n: int, change: float, sd: float, alpha: float = 1.0 - LEVEL) -> float:
+    """Power of the two-sided paired t test at level ``alpha`` with ``n`` pairs.
+
+    ``change`` is the true mean difference and ``sd`` the sd of the differences. Raises
+    ValueError for n < 2 or sd <= 0.
+    """
+    if n < 2:
+        raise ValueError(f"n(={n}) must be >= 2")
+    if not sd > 0:
+        raise ValueError(f"sd(={sd}) must be > 0")
+    df = n - 1
+    critical = float(stats.t.ppf(1.0 - alpha / 2.0, df))
+    shift = abs(change) * math.sqrt(n) / sd
+    return float(stats.nct.sf(critical, df, shift) + stats.nct.cdf(-critical, df, shift))
+
+
+def seeds_needed(change: float, sd: float, power: float = 0.8, alpha: float = 1.0 - LEVEL,
+                 limit: int = 1_000_000) -> int | None:
+    """Fewest seeds (pairs) for which the paired t test detects ``change`` with ``power``.
+
+    ``sd`` is the sd of per-seed differences (estimated from a pilot run). Returns 2 when the
+    differences did not vary (sd == 0) and ``change`` is not 0; None when ``change`` is 0 or
+    not finite, ``sd`` is unknown, or more than ``limit`` seeds would be needed. Raises
+    ValueError if ``power`` is not in (0, 1).
+    """
+    if not 0.0 < power < 1.0:
+        raise ValueError(f"power(={power}) must be in (0, 1)")
+    if not (math.isfinite(change) and math.isfinite(sd)) or change == 0:
+        return None
+    if sd == 0:
+        return 2
+    if paired_power(limit, change, sd, alpha) < power:
+        return None
+    # Normal approximation as a starting point, then the exact noncentral t by bisection.
+    z = stats.norm.ppf(1.0 - alpha / 2.0) + stats.norm.ppf(power)
+    guess = max(2, math.ceil((z * sd / abs(change)) ** 2))
+    low, high = 1, min(limit, guess)
+    while paired_power(high, change, sd, alpha) < power:
+        low, high = high, min(limit, high * 2)
+    low = max(low, 1)
+    while high - low > 1:
+        mid = (low + high) // 2
+        if mid >= 2 and paired_power(mid, change, sd, alpha) >= power:
+            high = mid
+        else:
+            low = mid
+    return high
