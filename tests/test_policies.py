@@ -109,3 +109,30 @@ def test_a_policy_returning_bad_positions_is_named():
             fleetsim.simulate(config, seed=0)
     finally:
         engine.make_policy = original
+
+
+class QuickFinishUnranked(BUILTIN_POLICIES["quick-finish"]):
+    """quick-finish without its rank: the engine shows it every eligible check-in."""
+
+    rank = None
+
+
+class LotteryUnranked(BUILTIN_POLICIES["lottery"]):
+    rank = None
+
+
+@pytest.mark.parametrize(("ranked", "unranked"), [("quick-finish", "QuickFinishUnranked"),
+                                                  ("lottery", "LotteryUnranked")])
+def test_ranked_windows_choose_like_full_windows(ranked, unranked):
+    # Looking at check-ins in rank order until enough are eligible must not change what is
+    # chosen, only what it costs: compare the accepted devices' task times and round counts.
+    def task_times(result):
+        p = result.participations
+        return (p["download_s"] + p["train_s"] + p["upload_s"]).to_numpy()
+    settings = ["fleet.devices=60000", "horizon.duration=12h", "rounds.rest=2h"]
+    fast = fleetsim.simulate(load_config(example_path(), settings + [f"selection.policy={ranked}"]), seed=4)
+    full = fleetsim.simulate(load_config(example_path(), settings + [f"selection.policy=tests.test_policies:{unranked}"]),
+                             seed=4)
+    assert np.median(task_times(fast)) == pytest.approx(np.median(task_times(full)), rel=0.05)
+    assert fast.summary["rounds"]["committed"] == pytest.approx(full.summary["rounds"]["committed"], rel=0.05)
+    assert fast.rounds["checkins"].sum() < full.rounds["checkins"].sum()
