@@ -40,7 +40,9 @@ def fail(error: FleetsimError) -> None:
     raise typer.Exit(2)
 
 
-def read_config(file: Path | None, overrides: list[str], devices: int | None = None, days: float | None = None) -> Config:
+def read_config(
+    file: Path | None, overrides: list[str], devices: int | None = None, days: float | None = None
+) -> Config:
     """Load the fleet file with --set, --devices and --days applied (all validated alike)."""
     path = file if file is not None else example_path()
     extra = list(overrides)
@@ -83,7 +85,8 @@ def render_summary(summary: dict[str, Any]) -> str:
         f"  seed {summary['seed']}, config {summary['config_hash']}, {summary['devices']:,} devices, "
         f"{summary['simulated_hours']:g} simulated hours from {summary['horizon_start']}, policy {summary['policy']}",
         f"rounds: {r['committed']} committed of {r['attempted']} ({r['committed_per_hour']:.2f} per hour); "
-        f"{r['failed']} failed, {r['abandoned']} abandoned" + (f", {r['outage']} lost to outages" if r["outage"] else ""),
+        f"{r['failed']} failed, {r['abandoned']} abandoned"
+        + (f", {r['outage']} lost to outages" if r["outage"] else ""),
     ]
     if d["p50"] is not None:
         lines.append(f"  committed round duration p50 {d['p50']:.0f}s, p90 {d['p90']:.0f}s, p99 {d['p99']:.0f}s")
@@ -94,9 +97,11 @@ def render_summary(summary: dict[str, Any]) -> str:
     causes = sorted(w["by_cause"].items(), key=lambda kv: -kv[1]["compute_s"])[:4]
     if causes:
         total = sum(v["compute_s"] for v in w["by_cause"].values()) or 1.0
-        lines.append("  largest causes (compute): " + ", ".join(f"{k} {100 * v['compute_s'] / total:.0f}%" for k, v in causes))
-    lines.append(f"participation: coverage {_pct(b['coverage'])} of devices, Gini {b['gini'] if b['gini'] is None else format(b['gini'], '.2f')}, "
-                 f"chi-square p {b['chi_square_p'] if b['chi_square_p'] is None else format(b['chi_square_p'], '.3g')}")
+        shares = ", ".join(f"{k} {100 * v['compute_s'] / total:.0f}%" for k, v in causes)
+        lines.append(f"  largest causes (compute): {shares}")
+    gini = "n/a" if b["gini"] is None else f"{b['gini']:.2f}"
+    chi_p = "n/a" if b["chi_square_p"] is None else f"{b['chi_square_p']:.3g}"
+    lines.append(f"participation: coverage {_pct(b['coverage'])} of devices, Gini {gini}, chi-square p {chi_p}")
     lines.append(f"  {'device type':<18} {'fleet':>7} {'eligible':>9} {'reports':>8} {'weight':>7} {'ratio':>6}")
     for name, v in b["by_device_type"].items():
         ratio = "n/a" if v["representation_ratio"] is None else f"{v['representation_ratio']:.2f}"

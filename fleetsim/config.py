@@ -58,6 +58,7 @@ SIGNALS = ("idle", "charging", "unmetered")
 """The three on/off device signals, in the order the engine stores them."""
 
 SignalName = Literal["idle", "charging", "unmetered"]
+_ALL_SIGNALS: tuple[SignalName, ...] = ("idle", "charging", "unmetered")
 
 
 def _duration(value: Any) -> float:
@@ -181,12 +182,15 @@ class DeviceType(_Strict):
     up_mbps: NumberTrait
     samples: NumberTrait = Field(description="local training samples")
     battery_level: BatteryLevels = BatteryLevels()
-    signals: dict[SignalName, SignalPattern]
+    signals: dict[str, SignalPattern]
 
     @field_validator("signals")
     @classmethod
     def _all_signals(cls, value: dict[str, SignalPattern]) -> dict[str, SignalPattern]:
         missing = [s for s in SIGNALS if s not in value]
+        unknown = [s for s in value if s not in SIGNALS]
+        if unknown:
+            raise ValueError(f"unknown signal(s) {', '.join(unknown)}; expected {', '.join(SIGNALS)}")
         if missing:
             raise ValueError(f"missing signal(s) {', '.join(missing)}; expected all of {', '.join(SIGNALS)}")
         return value
@@ -235,7 +239,7 @@ class Workload(_Strict):
     epochs: int = Field(default=1, ge=1)
     batch_size: int = Field(default=32, ge=1)
     memory_needed: Size = Field(default=0.0, ge=0)
-    requires: list[SignalName] = Field(default_factory=lambda: list(SIGNALS))
+    requires: list[SignalName] = Field(default_factory=lambda: list(_ALL_SIGNALS))
     min_battery: float = Field(default=0.0, ge=0, le=100, description="percent")
     execution_limit: Duration = Field(default=float("inf"), gt=0)
     crash_per_hour: float = Field(default=0.0, ge=0, description="crash hazard while working")

@@ -145,7 +145,9 @@ def simulate(
     )
 
 
-def _census_frame(fleet: Fleet, times: list[float], sampled: list[np.ndarray], eligible: list[np.ndarray]) -> pd.DataFrame:
+def _census_frame(
+    fleet: Fleet, times: list[float], sampled: list[np.ndarray], eligible: list[np.ndarray]
+) -> pd.DataFrame:
     """Long table: time_s, device_type, region, sampled, eligible (expected, among the sampled),
     eligible_est (scaled to the group's size in the fleet)."""
     n_regions = len(fleet.region_names)

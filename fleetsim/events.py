@@ -7,6 +7,8 @@ concatenates its chunks into DataFrames once, at the end of a run.
 from __future__ import annotations
 
 from collections import defaultdict
+from collections.abc import Mapping
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -90,7 +92,7 @@ class EventLog:
             self._rounds[key].append(np.asarray([values[key]], dtype=dtype))
 
     @staticmethod
-    def _frame(chunks: dict[str, list[np.ndarray]], schema: dict[str, type]) -> pd.DataFrame:
+    def _frame(chunks: dict[str, list[np.ndarray]], schema: Mapping[str, Any]) -> pd.DataFrame:
         return pd.DataFrame(
             {
                 key: np.concatenate(chunks[key]) if chunks[key] else np.empty(0, dtype=dtype)

@@ -52,7 +52,9 @@ def gini(values: np.ndarray) -> float:
     return float(np.sum((2 * ranks - n - 1) * x) / (n * total))
 
 
-def wilson_interval(successes: np.ndarray, trials: float, z: float = 1.959963984540054) -> tuple[np.ndarray, np.ndarray]:
+def wilson_interval(
+    successes: np.ndarray, trials: float, z: float = 1.959963984540054
+) -> tuple[np.ndarray, np.ndarray]:
     """Wilson score interval for binomial proportions (Wilson, JASA 22, 1927); 95% by default."""
     k = np.asarray(successes, dtype=float)
     if trials <= 0:
@@ -349,7 +351,9 @@ def compute_metrics(result: Result) -> Metrics:
         "participations": {
             "accepted": int(len(parts)),
             "used_reports": int(used.sum()),
-            "by_outcome": {k: int(v) for k, v in labelled["outcome"].value_counts().reindex(OUTCOMES, fill_value=0).items()},
+            "by_outcome": {
+                k: int(v) for k, v in labelled["outcome"].value_counts().reindex(OUTCOMES, fill_value=0).items()
+            },
             "dropouts_by_cause": {k: int(v) for k, v in drops["cause"].value_counts().items() if v > 0 and k != "none"},
         },
         "waste": {

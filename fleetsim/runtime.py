@@ -109,9 +109,7 @@ class FleetRuntime:
         keep = self.capable[devices] & (self.free_at[devices] <= times)
         return devices[keep], times[keep]
 
-    def eligible(
-        self, devices: np.ndarray, times: np.ndarray
-    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    def eligible(self, devices: np.ndarray, times: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Of these ticks, the ones whose device is eligible: positions, battery %, charging.
 
         Observes the signals it needs at the tick times and records them (the run's history
@@ -137,7 +135,9 @@ class FleetRuntime:
         live, battery, charging = self.eligible(devices, times)
         return devices[live], times[live], battery, charging
 
-    def candidates(self, devices: np.ndarray, times: np.ndarray, battery: np.ndarray, charging: np.ndarray) -> Candidates:
+    def candidates(
+        self, devices: np.ndarray, times: np.ndarray, battery: np.ndarray, charging: np.ndarray
+    ) -> Candidates:
         """The check-ins as a policy sees them (per-device traits gathered on demand)."""
         fleet = self.fleet
         arrays = {

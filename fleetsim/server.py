@@ -99,7 +99,7 @@ class RoundServer:
 
     # -------------------------------------------------------------------------- one round
 
-    def _select(self, opened: float) -> tuple[np.ndarray, ...]:
+    def _select(self, opened: float) -> tuple[Any, ...]:
         """Fill the round: accepted devices, check-in and acceptance times, battery %, charging;
         the selection's end; eligible check-ins seen."""
         rounds = self.config.rounds
@@ -221,6 +221,7 @@ class RoundServer:
         index = self.round_index
         self.round_index += 1
         devices, checkin_s, accept_s, battery, charging, selected_at, checkins = self._select(opened)
+        selected_at, checkins = float(selected_at), int(checkins)
         n = devices.size
         enough = n >= rounds.required_reports
 
@@ -262,7 +263,6 @@ class RoundServer:
         uploading = working & (cohort.phase_at(rel_close) == 3) & (not lost)
         late = uploading & np.isinf(cohort.drop_at)
         late_drop = uploading & ~late
-        stopped = working & ~uploading
 
         end_rel = np.where(reported | late, cohort.task_s, rel_close)
         end_rel = np.where(dropped | late_drop, cohort.drop_at, end_rel)
@@ -320,15 +320,15 @@ class RoundServer:
         self.log.add_round(
             round=index,
             opened_s=opened,
-            selected_s=selected_at,
-            closed_s=closed,
+            selected_s=float(selected_at),
+            closed_s=float(closed),
             accepted=n,
             reports=n_reports,
             status=_STATUS[status],
-            checkins=checkins,
+            checkins=int(checkins),
         )
         self._release(cohort, devices, accept_s, end_rel, cause)
-        return closed
+        return float(closed)
 
     def _release(self, cohort: Any, devices: np.ndarray, accept_s: np.ndarray, end_rel: np.ndarray,
                  cause: np.ndarray) -> None:
