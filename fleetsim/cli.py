@@ -128,6 +128,7 @@ def run(
         config = read_config(file, overrides, devices, days)
         with progress_bar(config.horizon.duration, "simulating") as tick:
             result = simulate(config, seed=seed, on_progress=tick)
+        result.source = str(file if file is not None else example_path())
         write_run(result, out)
         if report:
             from .report import write_report

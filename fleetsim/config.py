@@ -225,6 +225,10 @@ class FleetSpec(_Strict):
 
     @model_validator(mode="after")
     def _shares(self) -> FleetSpec:
+        for kind, names in (("device type", self.device_types), ("region", self.regions)):
+            for name in names:
+                if not name.strip() or any(ord(c) < 32 or ord(c) == 127 for c in name):
+                    raise ValueError(f"{kind} name {name!r} must be non-blank text without control characters")
         _check_shares("device type", self.device_types)
         _check_shares("region", self.regions)
         return self

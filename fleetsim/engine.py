@@ -53,6 +53,7 @@ class Result:
     rounds: pd.DataFrame
     census: pd.DataFrame
     policy: str
+    source: str | None = None  # the fleet file, when the config came from one
     _metrics: Any = field(default=None, repr=False)
 
     @property

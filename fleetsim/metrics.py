@@ -331,6 +331,7 @@ def compute_metrics(result: Result) -> Metrics:
 
     summary = {
         "scenario": config.scenario,
+        "fleet_file": result.source,
         "seed": result.seed,
         "config_hash": result.config_hash,
         "policy": result.policy,

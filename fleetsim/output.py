@@ -65,6 +65,7 @@ def atomic_folder(target: Path, fill: Callable[[Path], None]) -> Path:
     try:
         parent.mkdir(parents=True, exist_ok=True)
         tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.partial-", dir=parent))
+        tmp.chmod(0o755)  # mkdtemp makes it private; a run folder is as readable as any output
     except OSError as exc:
         raise FleetsimError(f"{target}: cannot create the output folder ({exc.strerror or exc})") from None
     try:

@@ -107,7 +107,8 @@ class RoundServer:
         rng = self.rngs["policy"]
         n_types = len(runtime.fleet.type_names)
         accept_count = rounds.accept_count
-        timeout_at = opened + rounds.selection_timeout
+        # An outage cuts the selection short (the round is then lost at the outage start).
+        timeout_at = min(opened + rounds.selection_timeout, self._next_outage_after(opened))
         needed = accept_count
         by_type = np.zeros(n_types, dtype=np.int64)
         chunks: list[tuple[np.ndarray, ...]] = []

@@ -120,3 +120,9 @@ def test_schema_describes_every_top_level_section():
     schema = config_schema()
     assert set(schema["properties"]) == set(fleetsim.Config.model_fields)
     assert schema["additionalProperties"] is False
+
+
+def test_names_with_control_characters_are_refused(raw):
+    raw["fleet"]["regions"]["north\x00atlantic"] = raw["fleet"]["regions"].pop("north-atlantic")
+    (line,) = problems(raw)
+    assert "control characters" in line

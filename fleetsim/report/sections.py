@@ -116,7 +116,8 @@ def _run(r: RunFolder) -> Section:
     disruptions = c.get("disruptions") or []
     rows: list[list[Any]] = [
         ["Scenario", s["scenario"]],
-        ["Fleet file", "not recorded in the run folder; config.json beside this report holds the validated file"],
+        ["Fleet file", (s.get("fleet_file") or "not recorded (the run came from the Python API)")
+         + "; config.json beside this report holds the validated file"],
         ["Seed", str(s["seed"])],
         ["Configuration hash", f"{s['config_hash']} (SHA-256 of config.json as canonical JSON, first 16 hex digits)"],
         ["Horizon", f"{seconds(horizon_s)}" + ("" if seconds(horizon_s).endswith(" h") else
