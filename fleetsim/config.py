@@ -298,8 +298,13 @@ class Selection(_Strict):
 
 
 class Horizon(_Strict):
+    """The simulated span. ``warmup`` runs the server before ``start`` so that the fleet's
+    rest periods and participation history reach their running state; nothing of the warm-up
+    is reported. Unset: as long as the rest period, at most two days."""
+
     start: Instant
     duration: Duration = Field(gt=0)
+    warmup: Duration | None = Field(default=None, ge=0)
 
 
 class Disruption(_Strict):

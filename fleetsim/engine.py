@@ -102,6 +102,10 @@ def simulate(
 ) -> Result:
     """Simulate the fleet and the server's rounds over the configured horizon.
 
+    The server starts ``horizon.warmup`` before the horizon (default: the rest period, at most
+    two days) so that rest periods are in their running state when the horizon begins; the
+    result holds only rounds opened from the horizon start on.
+
     ``seed`` fixes every random stream; the same config and seed give the same result bit for
     bit. ``on_progress`` is called with the simulated time (s) after each round. Raises
     ConfigError if the selection policy cannot be built.
@@ -112,10 +116,11 @@ def simulate(
     horizon_s = float(config.horizon.duration)
     rounds = config.rounds
     tail_s = rounds.selection_timeout + rounds.report_deadline + 2 * 3600.0
-    tables = build_signal_tables(config, fleet.type_names, fleet.region_names, horizon_s + tail_s)
+    warmup_s = warmup_of(config)
+    tables = build_signal_tables(config, fleet.type_names, fleet.region_names, horizon_s + tail_s, -warmup_s)
     runtime = FleetRuntime(config, fleet, tables, rngs)
     log = EventLog()
-    env = simpy.Environment()
+    env = simpy.Environment(initial_time=-warmup_s)
     server = RoundServer(env, config, runtime, policy, log, rngs, horizon_s, on_progress)
 
     census_times: list[float] = []
@@ -123,6 +128,8 @@ def simulate(
     eligible_rows: list[np.ndarray] = []
 
     def census() -> Generator[Any, Any, None]:
+        if env.now < 0:
+            yield env.timeout(-env.now)  # count from the horizon start, after the warm-up
         while env.now < horizon_s:
             sampled, eligible = runtime.census(env.now, CENSUS_SAMPLE)
             census_times.append(env.now)
@@ -135,15 +142,36 @@ def simulate(
     env.run()
 
     census_frame = _census_frame(fleet, census_times, sampled_rows, eligible_rows)
+    rounds_frame, parts_frame = _after_warmup(log.rounds(), log.participations())
     return Result(
         config=config,
         seed=seed,
         fleet=fleet,
-        participations=log.participations(),
-        rounds=log.rounds(),
+        participations=parts_frame,
+        rounds=rounds_frame,
         census=census_frame,
         policy=getattr(policy, "name", type(policy).__name__),
     )
+
+
+def warmup_of(config: Config) -> float:
+    """The warm-up before the horizon start, s: as set, else the rest period (at most 2 days)."""
+    if config.horizon.warmup is not None:
+        return float(config.horizon.warmup)
+    return float(min(config.rounds.rest, 2 * 86400.0))
+
+
+def _after_warmup(rounds: pd.DataFrame, parts: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Drop the rounds opened during the warm-up (and their participations); renumber from 0."""
+    kept = rounds["opened_s"].to_numpy() >= 0
+    if kept.all():
+        return rounds, parts
+    first = int(rounds["round"].to_numpy()[kept][0]) if kept.any() else int(rounds["round"].max()) + 1
+    rounds = rounds[kept].reset_index(drop=True)
+    parts = parts[parts["round"].to_numpy() >= first].reset_index(drop=True)
+    rounds["round"] -= first
+    parts["round"] -= first
+    return rounds, parts
 
 
 def _census_frame(

@@ -94,7 +94,7 @@ class RoundServer:
             closed = self._round(env.now)
             yield env.timeout(max(closed - env.now, 0.0))
             if self.on_progress is not None:
-                self.on_progress(env.now)
+                self.on_progress(max(env.now, 0.0))
             yield env.timeout(self.config.rounds.aggregation_time)
 
     # -------------------------------------------------------------------------- one round

@@ -122,9 +122,12 @@ class SignalTables:
 
 
 def build_signal_tables(
-    config: Config, type_names: tuple[str, ...], region_names: tuple[str, ...], end_s: float
+    config: Config, type_names: tuple[str, ...], region_names: tuple[str, ...], end_s: float, begin_s: float = 0.0
 ) -> SignalTables:
-    """Tables for every (type, region) group from the horizon's start minus a warm-up to ``end_s``.
+    """Tables for every (type, region) group from ``begin_s`` minus a settling time to ``end_s``.
+
+    The settling time (12 mean on-durations, 6 hours to 3 days) lets each chain start from
+    its own law rather than an arbitrary state.
 
     Behaviour-shift disruptions scale or move a signal's hourly on-probabilities for their
     window, regions and device types.
@@ -134,7 +137,7 @@ def build_signal_tables(
     mean_on = np.array([[types[t].signals[s].mean_on for s in SIGNALS] for t in type_names])
     warmup_s = float(min(3 * 86400.0, max(6 * 3600.0, 12 * mean_on.max())))
     warmup_s = np.ceil(warmup_s / STEP_S) * STEP_S
-    origin_s = -warmup_s
+    origin_s = min(begin_s, 0.0) - warmup_s
     steps = int(np.ceil((end_s - origin_s) / STEP_S)) + 1
     grid_start = config.horizon.start + timedelta(seconds=origin_s)
     step_times = origin_s + STEP_S * np.arange(steps)

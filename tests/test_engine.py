@@ -9,7 +9,7 @@ import fleetsim
 from fleetsim.config import example_path, load_config
 from fleetsim.events import OUTCOMES, ROUND_STATUS, WASTE_CAUSES
 
-SMALL = ["fleet.devices=4000", "horizon.duration=1d"]
+SMALL = ["fleet.devices=6000", "horizon.duration=1d", "rounds.rest=4h"]
 
 
 def run(*overrides, seed=1):
@@ -105,8 +105,9 @@ def test_summary_holds_the_documented_keys(base):
 
 
 def test_more_over_selection_fills_rounds_faster_and_wastes_more():
-    low = run("rounds.over_selection=1.0", "rounds.min_reports=60")
-    high = run("rounds.over_selection=1.6", "rounds.min_reports=60")
+    plenty = ["fleet.devices=40000", "rounds.rest=2h", "rounds.min_reports=60"]  # check-ins are not scarce
+    low = run(*plenty, "rounds.over_selection=1.0")
+    high = run(*plenty, "rounds.over_selection=1.6")
     assert high.summary["rounds"]["duration_s"]["p50"] < low.summary["rounds"]["duration_s"]["p50"]
     assert high.summary["waste"]["compute_fraction"] > low.summary["waste"]["compute_fraction"]
 
