@@ -286,7 +286,8 @@ def compute_metrics(result: Result) -> Metrics:
     # ---------------------------------------------------------------- hourly view
     n_hours = int(math.ceil(hours))
     hour_index = np.arange(n_hours)
-    closed_hour = np.floor(rounds["closed_s"].to_numpy() / 3600.0).astype(np.int64)
+    # A round that opened before the horizon ended but closed after it counts in the last hour.
+    closed_hour = np.minimum(np.floor(rounds["closed_s"].to_numpy() / 3600.0).astype(np.int64), max(n_hours - 1, 0))
     hourly = pd.DataFrame({"hour": hour_index})
     hourly["hour_utc"] = [format_instant(start + timedelta(hours=int(h))) for h in hour_index]
     for status in ROUND_STATUS:

@@ -27,7 +27,7 @@ from fleetsim.report import render_report, write_report
 from fleetsim.report.markdown import md_escape
 from fleetsim.report.survival import kaplan_meier
 
-SMALL = ["fleet.devices=3000", "horizon.duration=1d"]
+SMALL = ["fleet.devices=20000", "horizon.duration=1d", "rounds.rest=4h"]
 HOSTILE_TYPE = "<script>alert(1)</script>"
 HOSTILE_REGION = '$x_1$ & "co" <b>bold</b>'
 HOSTILE_SCENARIO = "<img src=x onerror=alert(2)> scenario"
@@ -54,7 +54,7 @@ def hostile_config() -> fleetsim.Config:
     regions = raw["fleet"]["regions"]
     regions[HOSTILE_REGION] = regions.pop("east-asia")
     raw["scenario"] = HOSTILE_SCENARIO
-    return fleetsim.build_config(raw, "hostile.yaml", ["fleet.devices=2000", "horizon.duration=12h"])
+    return fleetsim.build_config(raw, "hostile.yaml", ["fleet.devices=20000", "horizon.duration=12h", "rounds.rest=4h"])
 
 
 @pytest.fixture(scope="module")
