@@ -1,0 +1,32 @@
+"""Smoke version of benchmarks/scale.py: the same code path at a small size, no timing asserted."""
+
+import importlib.util
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def load_scale():
+    spec = importlib.util.spec_from_file_location("scale", ROOT / "benchmarks" / "scale.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def test_a_case_reports_every_column():
+    row = load_scale().run_case(3000, 0.25)
+    for key in ("devices", "days", "wall_s", "peak_mb", "events", "events_per_s", "rounds", "participations"):
+        assert key in row
+    assert row["events"] == row["rounds"] + row["participations"] > 0
+
+
+def test_the_command_runs_its_quick_table(tmp_path):
+    done = subprocess.run([sys.executable, str(ROOT / "benchmarks" / "scale.py"), "--quick", "--only", "devices"],
+                          cwd=ROOT, capture_output=True, text=True, timeout=300, check=False)
+    assert done.returncode == 0, done.stderr
+    assert "slope of log(wall) on log(devices)" in done.stdout
+    report = json.loads((ROOT / "benchmarks" / "out" / "scale-quick.json").read_text())
+    assert {r["devices"] for r in report["rows"]} == {2000, 4000}
