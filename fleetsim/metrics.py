@@ -129,6 +129,7 @@ def _bias_table(
     low, high = wilson_interval(reports, reports.sum())
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = report_share / fleet_share
+        ratio_low, ratio_high = low / fleet_share, high / fleet_share
         never = 1.0 - covered / devices
     return pd.DataFrame(
         {
@@ -140,8 +141,8 @@ def _bias_table(
             "report_share": report_share,
             "weight_share": share(weight),
             "representation_ratio": ratio,
-            "ratio_low": low / fleet_share,
-            "ratio_high": high / fleet_share,
+            "ratio_low": ratio_low,
+            "ratio_high": ratio_high,
             "accepted": accepted.astype(np.int64),
             "reports": reports.astype(np.int64),
             "never_share": never,

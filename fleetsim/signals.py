@@ -138,6 +138,10 @@ def build_signal_tables(
     warmup_s = float(min(3 * 86400.0, max(6 * 3600.0, 12 * mean_on.max())))
     warmup_s = np.ceil(warmup_s / STEP_S) * STEP_S
     origin_s = min(begin_s, 0.0) - warmup_s
+    # Put grid points on UTC quarter hours, whatever the horizon's start, so that each step
+    # lies within one local hour of every zone.
+    start_epoch = config.horizon.start.timestamp()
+    origin_s = float(np.floor((start_epoch + origin_s) / STEP_S) * STEP_S - start_epoch)
     steps = int(np.ceil((end_s - origin_s) / STEP_S)) + 1
     grid_start = config.horizon.start + timedelta(seconds=origin_s)
     step_times = origin_s + STEP_S * np.arange(steps)

@@ -167,3 +167,23 @@ def test_an_outage_during_selection_cuts_it_short():
     assert (parts["ended_s"] >= parts["accepted_s"]).all()
     inside = (parts["accepted_s"] > 2 * 3600) & (parts["accepted_s"] < 3 * 3600)
     assert not inside.any()
+
+
+def test_signal_grid_sits_on_utc_quarter_hours_for_any_start():
+    # Every IANA offset in use is a multiple of 15 minutes (IANA tz database, from memory), so a
+    # grid on UTC quarter hours keeps each step inside one local hour.
+    from fleetsim.fleet import sample_fleet
+    from fleetsim.signals import build_signal_tables
+
+    config = load_config(example_path(), SMALL + ["horizon.start=2026-03-02T00:10:00Z"])
+    fleet = sample_fleet(config, 0)
+    tables = build_signal_tables(config, fleet.type_names, fleet.region_names, 86400.0)
+    origin = config.horizon.start.timestamp() + tables.origin_s
+    assert origin % 900 == 0
+
+
+def test_summary_survives_a_group_with_no_devices():
+    # Equal sample counts collapse the data-size quartiles: some quartiles hold no device.
+    names = load_config(example_path()).fleet.device_types
+    result = run(*[f"fleet.device_types.{n}.samples=300" for n in names], "fleet.devices=2000", "horizon.duration=2h")
+    assert result.summary["bias"]["by_data_quartile"]
