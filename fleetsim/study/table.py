@@ -51,6 +51,7 @@ PARETO_OBJECTIVES: tuple[tuple[str, bool], ...] = (
 Direction = Literal["higher", "lower", "closer-to-1"]
 
 _SKIPPED = {"caution"}
+_TEXT = {"scenario", "fleet_file", "config_hash", "policy", "horizon_start"}  # stay text, even when empty
 _ZERO_WHEN_ABSENT = ("waste.by_cause.", "participations.dropouts_by_cause.", "participations.by_outcome.")
 
 # Which way is better, by column pattern (first match wins). Everything else is neutral: shares,
@@ -90,7 +91,7 @@ def _walk(prefix: str, value: Any, out: dict[str, Any]) -> None:
         for i, inner in enumerate(value):
             _walk(f"{prefix}.{i}", inner, out)
     elif prefix not in _SKIPPED:
-        out[prefix] = math.nan if value is None else value
+        out[prefix] = math.nan if value is None and prefix not in _TEXT else value
 
 
 def flatten_summary(summary: dict[str, Any]) -> dict[str, Any]:
