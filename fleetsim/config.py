@@ -369,6 +369,21 @@ def example_path() -> Path:
     return Path(__file__).parent / "data" / "inkwren.yaml"
 
 
+def read_yaml(path: Path, what: str = "the file") -> Any:
+    """Parse a YAML file with ``yaml.safe_load``; ConfigError names the file (and line) on failure."""
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise ConfigError([f"{path}: cannot read {what} ({exc.strerror or exc})"]) from None
+    try:
+        return yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
+        problem = getattr(exc, "problem", None) or str(exc).splitlines()[0]
+        raise ConfigError([f"{path}: not valid YAML{where}: {problem}"]) from None
+
+
 def load_config(path: str | Path, overrides: list[str] | None = None) -> Config:
     """Read, override and validate a fleet file.
 
@@ -376,17 +391,7 @@ def load_config(path: str | Path, overrides: list[str] | None = None) -> Config:
     Raises ConfigError (one line per problem) for unreadable files or invalid content.
     """
     path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise ConfigError([f"{path}: cannot read the file ({exc.strerror or exc})"]) from None
-    try:
-        raw = yaml.safe_load(text)
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        where = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
-        problem = getattr(exc, "problem", None) or str(exc).splitlines()[0]
-        raise ConfigError([f"{path}: not valid YAML{where}: {problem}"]) from None
+    raw = read_yaml(path)
     if not isinstance(raw, dict):
         raise ConfigError([f"{path}: expected a mapping of sections at the top level, got {type(raw).__name__}"])
     return build_config(raw, source=str(path), overrides=overrides)

@@ -17,7 +17,7 @@ from typing import Any
 
 import yaml
 
-from ..config import Config, build_config, load_config
+from ..config import Config, build_config, load_config, read_yaml
 from ..errors import ConfigError
 from ..policies import make_policy
 from ..units import parse_duration, parse_size
@@ -88,17 +88,7 @@ def read_stress(path: str | Path, base: FleetFile) -> list[dict[str, Any]]:
     the key path (``disruptions.0.factor``) of each problem.
     """
     path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise ConfigError([f"{path}: cannot read the stress file ({exc.strerror or exc})"]) from None
-    try:
-        data = yaml.safe_load(text)
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        where = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
-        problem = getattr(exc, "problem", None) or str(exc).splitlines()[0]
-        raise ConfigError([f"{path}: not valid YAML{where}: {problem}"]) from None
+    data = read_yaml(path, "the stress file")
     if not isinstance(data, dict) or "disruptions" not in data:
         raise ConfigError([f"{path}: expected a mapping with a 'disruptions' list at the top level"])
     extra = [key for key in data if key != "disruptions"]
