@@ -70,6 +70,12 @@ def run_case(devices: int, days: float, seed: int = 1, oracle: bool = False) -> 
         row["committed_per_hour"] = summary["rounds"]["committed_per_hour"]
         row["waste_compute_fraction"] = summary["waste"]["compute_fraction"]
         row["report_share"] = {k: v["report_share"] for k, v in summary["bias"]["by_device_type"].items()}
+    else:  # the oracle labels its frames with strings; the same figures from them
+        row["committed_per_hour"] = float((rounds["status"] == "committed").sum()) / (days * 24)
+        wasted = parts.loc[~parts["used"].astype(bool), "compute_s"].sum()
+        row["waste_compute_fraction"] = float(wasted / parts["compute_s"].sum())
+        used = parts[parts["used"].astype(bool)]
+        row["report_share"] = {str(k): float(v) for k, v in used["device_type"].value_counts(normalize=True).items()}
     return row
 
 
@@ -151,6 +157,10 @@ def main() -> None:
         table.extend([engine, oracle])
         print(f"oracle   {devices:>11,} devices: engine {engine['wall_s']:.2f} s, oracle {oracle['wall_s']:.1f} s, "
               f"ratio {engine['oracle_ratio']:.0f}x", flush=True)
+        for key in ("committed_per_hour", "waste_compute_fraction"):
+            print(f"  {key}: engine {engine[key]:.4g}, oracle {oracle[key]:.4g}")
+        for name, share in engine["report_share"].items():
+            print(f"  report share {name}: engine {share:.3f}, oracle {oracle['report_share'].get(name, 0.0):.3f}")
 
     print()
     print(f"machine: {report['machine']}")
