@@ -30,7 +30,10 @@ from .errors import FleetsimError
 if TYPE_CHECKING:
     from .engine import Result
 
-__all__ = ["write_run", "atomic_folder", "event_frame", "read_summary"]
+__all__ = ["write_run", "atomic_folder", "atomic_text", "atomic_save", "event_frame", "read_summary", "PARTIAL"]
+
+PARTIAL = ".partial-"
+"""Prefix of temporary files written beside their target (left over only by a killed process)."""
 
 
 def event_frame(result: Result) -> pd.DataFrame:
@@ -81,6 +84,50 @@ def atomic_folder(target: Path, fill: Callable[[Path], None]) -> Path:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     return target
+
+
+def atomic_text(path: Path, text: str) -> None:
+    """Write ``text`` to ``path`` through a flushed temporary file beside it and ``os.replace``.
+
+    Raises FleetsimError if the folder cannot be written.
+    """
+    path = Path(path)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        handle, tmp = tempfile.mkstemp(prefix=f"{PARTIAL}{path.name}.", dir=path.parent)
+    except OSError as exc:
+        raise FleetsimError(f"{path.parent}: cannot write ({exc.strerror or exc})") from None
+    try:
+        with os.fdopen(handle, "w", encoding="utf-8") as stream:
+            stream.write(text)
+            stream.flush()
+            os.fsync(stream.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+
+
+def atomic_save(path: Path, save: Callable[[Path], object]) -> None:
+    """Let ``save(tmp_path)`` write a file (e.g. a plot or Parquet), then move it to ``path``.
+
+    The temporary file sits beside ``path``, so the move is an atomic rename.
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f"{PARTIAL}{os.getpid()}.{path.name}")
+    try:
+        save(tmp)
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
 
 
 def write_run(result: Result, out: str | Path) -> Path:

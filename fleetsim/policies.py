@@ -147,8 +147,6 @@ class SelectionPolicy:
     # ``needed`` lowest-keyed eligible check-ins returns those (an infinite key: never
     # chosen). The engine then looks only at as many check-ins as the policy can use.
 
-    def describe(self) -> str:
-        return f"{self.name} (window {self.window_s:g}s, {'holds' if self.holds_checkins else 'accepts on arrival'})"
 
 
 class FirstCome(SelectionPolicy):

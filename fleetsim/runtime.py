@@ -65,7 +65,6 @@ class FleetRuntime:
             + padded * work.epochs * fleet.sample_cost_s
             + work.upload_bytes * 8.0 / (fleet.up_mbps * 1e6)
         )
-        self.checkins_seen = 0  # eligible check-ins handed to the server
 
     # ------------------------------------------------------------------ check-in ticks
 
@@ -126,14 +125,7 @@ class FleetRuntime:
             charging = self.signals.observe(devices[live], _CHARGING, times[live], rng)
         battery = self._battery(devices[live], charging, self.rngs["battery"])
         ok = battery >= self.min_battery
-        self.checkins_seen += int(ok.sum())
         return live[ok], battery[ok], charging[ok]
-
-    def checkins(self, start: float, end: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-        """Eligible check-ins in [start, end), sorted by time: devices, times, battery %, charging."""
-        devices, times = self.free_ticks(start, end)
-        live, battery, charging = self.eligible(devices, times)
-        return devices[live], times[live], battery, charging
 
     def candidates(
         self, devices: np.ndarray, times: np.ndarray, battery: np.ndarray, charging: np.ndarray

@@ -328,11 +328,10 @@ class RoundServer:
             status=_STATUS[status],
             checkins=int(checkins),
         )
-        self._release(cohort, devices, accept_s, end_rel, cause)
+        self._release(cohort, devices, accept_s, end_rel)
         return float(closed)
 
-    def _release(self, cohort: Any, devices: np.ndarray, accept_s: np.ndarray, end_rel: np.ndarray,
-                 cause: np.ndarray) -> None:
+    def _release(self, cohort: Any, devices: np.ndarray, accept_s: np.ndarray, end_rel: np.ndarray) -> None:
         """After the round: rest periods, participation counts, and what is known of signals."""
         runtime = self.runtime
         ended = accept_s + end_rel

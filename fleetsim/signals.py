@@ -117,8 +117,6 @@ class SignalTables:
     def _flat_log(self) -> np.ndarray:
         return self.prefix_log.reshape(-1)
 
-    def stationary(self, group: np.ndarray, signal: int, t: np.ndarray) -> np.ndarray:
-        return self.p[group, signal, self.step_of(t)]
 
 
 def build_signal_tables(

@@ -15,22 +15,20 @@ from __future__ import annotations
 import functools
 import hashlib
 import json
-import os
-import tempfile
-from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
 from .. import __version__
 from ..config import Config
 from ..errors import FleetsimError
+from ..output import PARTIAL as _PARTIAL
+from ..output import atomic_save, atomic_text
 
 __all__ = ["run_key", "engine_fingerprint", "RunStore", "atomic_text", "atomic_save", "RECORD_FORMAT"]
 
 RECORD_FORMAT = 1
 """Version of the record layout; records of another format are run again."""
 
-_PARTIAL = ".partial-"
 
 
 @functools.cache
@@ -57,50 +55,6 @@ def run_key(config: Config, seed: int) -> str:
         sort_keys=True, separators=(",", ":"),
     )
     return hashlib.sha256(canonical.encode()).hexdigest()[:20]
-
-
-def atomic_text(path: Path, text: str) -> None:
-    """Write ``text`` to ``path`` through a flushed temporary file beside it and ``os.replace``.
-
-    Raises FleetsimError if the folder cannot be written.
-    """
-    path = Path(path)
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        handle, tmp = tempfile.mkstemp(prefix=f"{_PARTIAL}{path.name}.", dir=path.parent)
-    except OSError as exc:
-        raise FleetsimError(f"{path.parent}: cannot write ({exc.strerror or exc})") from None
-    try:
-        with os.fdopen(handle, "w", encoding="utf-8") as stream:
-            stream.write(text)
-            stream.flush()
-            os.fsync(stream.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
-
-
-def atomic_save(path: Path, save: Callable[[Path], object]) -> None:
-    """Let ``save(tmp_path)`` write a file (e.g. a plot or Parquet), then move it to ``path``.
-
-    The temporary file sits beside ``path``, so the move is an atomic rename.
-    """
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f"{_PARTIAL}{os.getpid()}.{path.name}")
-    try:
-        save(tmp)
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
 
 
 class RunStore:
