@@ -100,7 +100,8 @@ def render_summary(summary: dict[str, Any]) -> str:
         shares = ", ".join(f"{k} {100 * v['compute_s'] / total:.0f}%" for k, v in causes)
         lines.append(f"  largest causes (compute): {shares}")
     gini = "n/a" if b["gini"] is None else f"{b['gini']:.2f}"
-    chi_p = "n/a" if b["chi_square_p"] is None else f"{b['chi_square_p']:.3g}"
+    p_value = b["chi_square_p"]
+    chi_p = "n/a" if p_value is None else ("< 1e-300" if p_value == 0 else f"{p_value:.3g}")
     lines.append(f"participation: coverage {_pct(b['coverage'])} of devices, Gini {gini}, chi-square p {chi_p}")
     lines.append(f"  {'device type':<18} {'fleet':>7} {'eligible':>9} {'reports':>8} {'weight':>7} {'ratio':>6}")
     for name, v in b["by_device_type"].items():

@@ -130,7 +130,7 @@ def test_server_outage_opens_no_round_inside_its_window():
 def test_network_slowdown_lengthens_downloads_where_and_when_it_applies():
     spec = "disruptions=[{kind: network-slowdown, start: 0s, duration: 12h, factor: 0.25, regions: [south-asia]}]"
     result = run(spec)
-    parts = result.parts if hasattr(result, "parts") else result.participations
+    parts = result.participations
     region = np.array(result.fleet.region_names)[parts["region"]]
     early = parts["accepted_s"] < 12 * 3600
     rate = 24e6 * 8 / parts["download_s"] / 1e6  # achieved Mbit/s
