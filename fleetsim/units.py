@@ -47,27 +47,38 @@ _SIZE_UNITS = {
 _SIZE_RE = re.compile(r"^(\d+(?:\.\d+)?(?:[eE][+-]?\d+)?)\s*([a-zA-Z]*)$")
 
 
+def _finite(value: float | int, what: str, shown: object) -> float:
+    """``value`` as a finite float; ValueError naming ``what`` otherwise (a huge int overflows)."""
+    try:
+        number = float(value)
+    except OverflowError:
+        number = math.inf
+    if not math.isfinite(number):
+        raise ValueError(f"expected a finite {what} (got {shown!r})")
+    return number
+
+
 def parse_duration(value: str | float | int) -> Seconds:
     """Return a duration in seconds.
 
-    Raises ValueError for a negative, non-finite or unreadable value.
+    Raises ValueError for a boolean, a negative, non-finite or unreadable value.
     """
     if isinstance(value, bool):
-        raise ValueError(f"expected a duration such as '90s', '8m' or 'PT8M', got {value!r}")
+        raise ValueError(f"expected a duration such as '90s', '8m' or 'PT8M', not a boolean (got {value!r})")
     if isinstance(value, (int, float)):
-        seconds = float(value)
+        seconds = _finite(value, "duration", value)
     elif isinstance(value, str):
-        seconds = _parse_duration_text(value.strip())
+        seconds = _finite(_parse_duration_text(value.strip()), "duration", value)
     else:
-        raise ValueError(f"expected a duration such as '90s', '8m' or 'PT8M', got {value!r}")
-    if not math.isfinite(seconds) or seconds < 0:
-        raise ValueError(f"expected a non-negative duration, got {value!r}")
+        raise ValueError(f"expected a duration such as '90s', '8m' or 'PT8M' (got {value!r})")
+    if seconds < 0:
+        raise ValueError(f"expected a non-negative duration (got {value!r})")
     return seconds
 
 
 def _parse_duration_text(text: str) -> Seconds:
     if text.startswith("-"):
-        raise ValueError(f"expected a non-negative duration, got {text!r}")
+        raise ValueError(f"expected a non-negative duration (got {text!r})")
     iso = _ISO_RE.match(text)
     if iso and text not in ("P", "PT") and not text.endswith("T"):
         parts = {k: float(v) if v else 0.0 for k, v in iso.groupdict().items()}
@@ -89,52 +100,56 @@ def _parse_duration_text(text: str) -> Seconds:
         pos = match.end()
     if pos == len(compact) and pos > 0:
         return total
-    raise ValueError(f"expected a duration such as '90s', '8m', '6h', '2d' or 'PT8M', got {text!r}")
+    raise ValueError(f"expected a duration such as '90s', '8m', '6h', '2d' or 'PT8M' (got {text!r})")
 
 
 def parse_size(value: str | float | int) -> Bytes:
     """Return a data size in bytes (SI: 1 MB = 10**6 B; IEC: 1 MiB = 2**20 B).
 
-    Raises ValueError for a negative or unreadable value.
+    Raises ValueError for a boolean, a negative, non-finite or unreadable value.
     """
     if isinstance(value, bool):
-        raise ValueError(f"expected a size such as '20MB' or '16MiB', got {value!r}")
+        raise ValueError(f"expected a size such as '20MB' or '16MiB', not a boolean (got {value!r})")
     if isinstance(value, (int, float)):
-        size = float(value)
+        size = _finite(value, "size", value)
     elif isinstance(value, str):
         match = _SIZE_RE.match(value.strip())
         unit = match.group(2).lower() if match else ""
         if not match or unit not in _SIZE_UNITS and unit != "":
-            raise ValueError(f"expected a size such as '20MB', '500kB' or '16MiB', got {value!r}")
-        size = float(match.group(1)) * _SIZE_UNITS.get(unit, 1)
+            raise ValueError(f"expected a size such as '20MB', '500kB' or '16MiB' (got {value!r})")
+        size = _finite(float(match.group(1)) * _SIZE_UNITS.get(unit, 1), "size", value)
     else:
-        raise ValueError(f"expected a size such as '20MB' or '16MiB', got {value!r}")
-    if not math.isfinite(size) or size < 0:
-        raise ValueError(f"expected a non-negative size, got {value!r}")
+        raise ValueError(f"expected a size such as '20MB' or '16MiB' (got {value!r})")
+    if size < 0:
+        raise ValueError(f"expected a non-negative size (got {value!r})")
     return size
 
 
 def parse_instant(value: str | datetime) -> datetime:
     """Return an aware UTC datetime from an ISO 8601 timestamp.
 
-    A timestamp without an offset is refused: the fleet file states instants in UTC.
+    A timestamp without an offset is refused: the fleet file states instants in UTC. Raises
+    ValueError naming what was expected.
     """
     if isinstance(value, datetime):
         moment = value
     elif isinstance(value, date):
-        raise ValueError(f"expected a timestamp with a time and UTC offset, such as '{value}T00:00:00Z', got {value}")
+        raise ValueError(f"expected a timestamp with a time and UTC offset, such as '{value}T00:00:00Z' (got {value})")
     elif isinstance(value, str):
         try:
             moment = datetime.fromisoformat(value.strip().replace("Z", "+00:00"))
         except ValueError as exc:
             raise ValueError(
-                f"expected an ISO 8601 timestamp such as '2026-03-02T00:00:00Z', got {value!r}"
+                f"expected an ISO 8601 timestamp such as '2026-03-02T00:00:00Z' (got {value!r})"
             ) from exc
     else:
-        raise ValueError(f"expected an ISO 8601 timestamp, got {value!r}")
+        raise ValueError(f"expected an ISO 8601 timestamp such as '2026-03-02T00:00:00Z' (got {value!r})")
     if moment.tzinfo is None:
-        raise ValueError(f"expected a timestamp with a UTC offset (e.g. a trailing 'Z'), got {value!r}")
-    return moment.astimezone(timezone.utc)
+        raise ValueError(f"expected a timestamp with a UTC offset (e.g. a trailing 'Z') (got {value!r})")
+    try:
+        return moment.astimezone(timezone.utc)
+    except OverflowError:  # an offset pushes it past year 1 or 9999
+        raise ValueError(f"expected an instant between years 1 and 9999 in UTC (got {value!r})") from None
 
 
 def format_duration(seconds: Seconds) -> str:

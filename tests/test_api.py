@@ -8,7 +8,8 @@ import fleetsim
 def test_all_names_exist_and_cover_the_public_objects():
     for name in fleetsim.__all__:
         assert hasattr(fleetsim, name), name
-    public = {n for n in dir(fleetsim) if not n.startswith("_") and not isinstance(getattr(fleetsim, n), type(fleetsim))}
+    module = type(fleetsim)
+    public = {n for n in dir(fleetsim) if not n.startswith("_") and not isinstance(getattr(fleetsim, n), module)}
     assert public <= set(fleetsim.__all__), public - set(fleetsim.__all__)
 
 

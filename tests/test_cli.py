@@ -46,7 +46,8 @@ def test_run_set_overrides_are_applied_and_validated(tmp_path):
     ("edit", "fragment"),
     [
         (lambda t: t.replace("share: 0.38", "share: 0.48"), "shares must sum to 1"),
-        (lambda t: t.replace("timezone: Asia/Tokyo", "timezone: Asia/Atlantis"), "unknown IANA time zone 'Asia/Atlantis'"),
+        (lambda t: t.replace("timezone: Asia/Tokyo", "timezone: Asia/Atlantis"),
+         "unknown IANA time zone 'Asia/Atlantis'"),
         (lambda t: t.replace("epochs: 2", "epochs: 2\n  epoch_count: 2"), "workload.epoch_count: unknown key"),
         (lambda t: t.replace("aggregation_time: 45s", "aggregation_time: -45s"), "non-negative duration"),
         (lambda t: t.replace("policy: first-come", "policy: nowhere.module:Policy"), "cannot import plug-in"),

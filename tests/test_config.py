@@ -47,7 +47,8 @@ def test_example_zones_include_dst_no_dst_and_a_half_hour_offset():
     ("override", "path", "expected"),
     [
         ("rounds.report_deadline=-5m", "rounds.report_deadline", "non-negative duration"),
-        ("fleet.regions.south-asia.timezone=Mars/Olympus", "fleet.regions.south-asia.timezone", "unknown IANA time zone"),
+        ("fleet.regions.south-asia.timezone=Mars/Olympus", "fleet.regions.south-asia.timezone",
+         "unknown IANA time zone"),
         ("fleet.device_types.tablet.share=0.5", "fleet", "shares must sum to 1"),
         ("rounds.bogus=1", "rounds.bogus", "unknown key"),
         ("rounds.target_reports=many", "rounds.target_reports", "integer"),
@@ -126,3 +127,63 @@ def test_names_with_control_characters_are_refused(raw):
     raw["fleet"]["regions"]["north\x00atlantic"] = raw["fleet"]["regions"].pop("north-atlantic")
     (line,) = problems(raw)
     assert "control characters" in line
+
+
+@pytest.mark.parametrize(
+    ("override", "path", "expected"),
+    [
+        ("rounds.over_selection=.inf", "rounds.over_selection", "finite number"),
+        ("disruptions=[{kind: behaviour-shift, signal: idle, start: 1h, duration: 1h, shift_hours: .nan}]",
+         "disruptions.0.shift_hours", "finite number"),
+        ("fleet.device_types.tablet.battery_wh.median=.inf", "fleet.device_types.tablet.battery_wh.median", "finite"),
+        ("fleet.device_types.tablet.battery_wh=.inf", "fleet.device_types.tablet.battery_wh", "finite number"),
+        ("selection.params.window=.nan", "selection.params.window", "finite number"),
+        ("workload.epochs=yes", "workload.epochs", "not a boolean"),
+        ("fleet.device_types.tablet.signals.idle.hourly.0=true", "fleet.device_types.tablet.signals.idle.hourly.0",
+         "not a boolean"),
+        ("rounds.selection_timeout=yes", "rounds.selection_timeout", "not a boolean"),
+        ("fleet.regions.east-asia.timezone=America", "fleet.regions.east-asia.timezone", "unknown IANA time zone"),
+        ("fleet.regions.east-asia.timezone=../../etc/passwd", "fleet.regions.east-asia.timezone", "unknown IANA"),
+        ("rounds.checkin_every=0.5s", "rounds.checkin_every", "greater than or equal to 1"),
+        ("horizon.duration=0.1ms", "horizon.duration", "at least 1ms"),
+        ("horizon.start=1600-01-01T00:00:00Z", "horizon.start", "range fleetsim can represent"),
+        ("scenario=bad\u2028title", "scenario", "line or paragraph separators"),
+    ],
+)
+def test_values_that_used_to_pass_or_crash_are_one_line(raw, override, path, expected):
+    lines = problems(raw, [override])
+    assert len(lines) == 1, lines
+    assert lines[0].startswith(f"fleet.yaml: {path}: ") and expected in lines[0], lines
+    assert "(got " in lines[0]
+
+
+@pytest.mark.parametrize("char", ["\x00", "\x1b", "\x85", "\u202e", "\u2067", "\u2028", "\u2029", "\u200f"])
+def test_one_rule_refuses_control_separator_and_bidi_characters_in_names(raw, char):
+    raw["fleet"]["device_types"][f"tab{char}let"] = raw["fleet"]["device_types"].pop("tablet")
+    (line,) = problems(raw)
+    assert line.startswith("fleet.yaml: fleet.device_types: device type name") and f"U+{ord(char):04X}" in line
+
+
+def test_duplicate_keys_name_both_lines_in_fleet_and_override_text(tmp_path):
+    path = tmp_path / "fleet.yaml"
+    path.write_text(example_path().read_text().replace("  epochs: 2\n", "  epochs: 2\n  epochs: 3\n"))
+    with pytest.raises(ConfigError) as info:
+        load_config(path)
+    (line,) = info.value.problems
+    assert "duplicate key 'epochs' at line" in line and "(first at line" in line
+    with pytest.raises(ConfigError, match=r"--set: selection.params: .*duplicate key 'a'"):
+        apply_overrides(yaml.safe_load(example_path().read_text()), ["selection.params={a: 1, a: 2}"])
+
+
+def test_memory_estimate_is_above_a_measured_run_and_grows_with_the_drivers():
+    from fleetsim.config import estimate_memory
+
+    config = load_config(example_path())
+    # Measured: peak RSS of `fleetsim run` on the example (50,000 devices, 7 days) was 505 MB.
+    small = estimate_memory(config, 30.0)
+    assert 505e6 <= small["total"] <= 5 * 505e6
+    bigger = estimate_memory(load_config(example_path(), ["fleet.devices=1000000"]), 30.0)
+    assert bigger["devices"] == pytest.approx(20 * small["devices"])
+    faster = estimate_memory(load_config(example_path(), ["rounds.checkin_every=1s"]), 30.0)
+    # ticks: devices x (window / check-in period + 1)
+    assert faster["ticks"] == pytest.approx(small["ticks"] * (30 + 1) / (30 / 600 + 1))

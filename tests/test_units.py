@@ -59,3 +59,21 @@ def test_instants_are_iso_8601_utc():
 @given(st.integers(min_value=1, max_value=10 * 86400))
 def test_formatted_durations_read_back(seconds):
     assert parse_duration(format_duration(seconds)) == seconds
+
+
+@pytest.mark.parametrize("bad", [float("inf"), float("nan"), 10**400, "1e999", "inf", "P" + "9" * 320 + "D"])
+def test_non_finite_and_overflowing_durations_are_refused(bad):
+    # A bare int too large for a float (10**400) overflows: refused like inf, not raised as OverflowError.
+    with pytest.raises(ValueError, match=r"finite duration \(got "):
+        parse_duration(bad)
+
+
+@pytest.mark.parametrize("bad", [float("inf"), 10**400, "1e999MB", "1e999"])
+def test_non_finite_sizes_are_refused(bad):
+    with pytest.raises(ValueError, match="finite size"):
+        parse_size(bad)
+
+
+def test_instant_pushed_past_year_9999_by_its_offset_is_refused():
+    with pytest.raises(ValueError, match="between years 1 and 9999"):
+        parse_instant("9999-12-31T23:00:00-05:00")

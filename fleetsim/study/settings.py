@@ -17,7 +17,7 @@ from typing import Any
 
 import yaml
 
-from ..config import Config, build_config, load_config, read_yaml
+from ..config import Config, build_config, check_memory, load_config, load_yaml_text, read_yaml
 from ..errors import ConfigError
 from ..policies import make_policy
 from ..units import parse_duration, parse_size
@@ -59,7 +59,7 @@ class FleetFile:
         """
         path = Path(path)
         load_config(path, list(overrides))  # every reading and validation error, worded once
-        raw = yaml.safe_load(path.read_text(encoding="utf-8"))
+        raw = read_yaml(path)
         return cls(raw=raw, source=str(path), overrides=tuple(overrides))
 
     def config(self, extra: Sequence[str] = ()) -> Config:
@@ -137,9 +137,9 @@ def _yaml_scalar(value: Any) -> str:
     """Write ``value`` so that the override reads it back as the same value."""
     if isinstance(value, str):
         try:
-            if yaml.safe_load(value) == value:
+            if load_yaml_text(value) == value:
                 return value
-        except yaml.YAMLError:
+        except ValueError:
             pass
     text = yaml.safe_dump(value, default_flow_style=True).strip()
     return text.removesuffix("\n...").strip()
@@ -149,8 +149,13 @@ def parse_assignment(text: str, option: str) -> tuple[str, str]:
     """Split ``key.path=value``; raises ConfigError naming ``option`` when malformed."""
     key, sep, value = text.partition("=")
     if not sep or not key.strip() or not value.strip():
-        raise ConfigError([f"{option} {text!r}: expected key.path=value"])
+        raise ConfigError([f"{option}: expected key.path=value (got {_shown(text)})"])
     return key.strip(), value.strip()
+
+
+def _shown(value: Any) -> str:
+    text = repr(value)
+    return text if len(text) <= 60 else text[:57] + "..."
 
 
 def _split_values(text: str) -> list[str]:
@@ -181,9 +186,11 @@ def _range_parts(parts: list[str]) -> list[float] | None:
     """Read start, stop, step as plain numbers, durations or sizes (all three alike)."""
     for parser in (float, parse_duration, parse_size):
         try:
-            return [float(parser(p)) for p in parts]  # type: ignore[operator]
-        except ValueError:
+            numbers = [float(parser(p)) for p in parts]  # type: ignore[operator]
+        except (ValueError, OverflowError):
             continue
+        if all(math.isfinite(n) for n in numbers):
+            return numbers
     return None
 
 
@@ -197,18 +204,19 @@ def parse_axis(text: str) -> Axis:
     wrong-signed step, or more than MAX_AXIS_VALUES values.
     """
     key, spec = parse_assignment(text, "--vary")
-    where = f"--vary {text!r}"
+    where, got = f"--vary: {key}", f"(got {_shown(text)})"
     parts = spec.split(":")
     if len(parts) == 3 and "," not in spec:
         numbers = _range_parts(parts)
         if numbers is None:
-            raise ConfigError([f"{where}: expected start:stop:step as numbers, durations or sizes"])
+            raise ConfigError([f"{where}: expected start:stop:step as finite numbers, durations or sizes {got}"])
         start, stop, step = numbers
         if step == 0 or (stop - start) * step < 0:
-            raise ConfigError([f"{where}: step {parts[2]} never reaches {parts[1]} from {parts[0]}"])
-        count = math.floor((stop - start) / step + 1e-9) + 1
-        if count > MAX_AXIS_VALUES:
-            raise ConfigError([f"{where}: gives {count} values; at most {MAX_AXIS_VALUES}"])
+            raise ConfigError([f"{where}: step {parts[2]} never reaches {parts[1]} from {parts[0]} {got}"])
+        ratio = (stop - start) / step
+        if not math.isfinite(ratio) or ratio + 1 > MAX_AXIS_VALUES:
+            raise ConfigError([f"{where}: gives more than {MAX_AXIS_VALUES} values {got}"])
+        count = math.floor(ratio + 1e-9) + 1
         whole = all(p.strip().lstrip("+-").isdigit() for p in parts)
         values: list[Any] = []
         for i in range(count):
@@ -218,15 +226,19 @@ def parse_axis(text: str) -> Axis:
         values = []
         for item in _split_values(spec):
             if not item:
-                raise ConfigError([f"{where}: an empty value; separate values with single commas"])
+                raise ConfigError([f"{where}: an empty value; separate values with single commas {got}"])
             try:
-                values.append(yaml.safe_load(item))
-            except yaml.YAMLError:
+                values.append(load_yaml_text(item))
+            except ValueError as exc:
+                if item[:1] in "[{&*!|>":
+                    raise ConfigError([f"{where}: {exc} (got {_shown(item)})"]) from None
                 values.append(item)
+        if len(values) > MAX_AXIS_VALUES:
+            raise ConfigError([f"{where}: gives more than {MAX_AXIS_VALUES} values {got}"])
     seen: list[Any] = []
     for value in values:
         if value in seen:
-            raise ConfigError([f"{where}: {_show(value)} is listed twice"])
+            raise ConfigError([f"{where}: {_show(value)} is listed twice {got}"])
         seen.append(value)
     return Axis(key=key, values=tuple(values))
 
@@ -253,7 +265,8 @@ def grid_cells(base: FleetFile, axes: Sequence[Axis]) -> list[tuple[Cell, Config
         cell = Cell(index=index, settings=settings, overrides=overrides, label=label)
         try:
             config = base.config(overrides)
-            make_policy(config.selection.policy, config.selection.params)
+            policy = make_policy(config.selection.policy, config.selection.params, source=f"{base.source}: selection")
+            check_memory(config, float(policy.window_s), base.source)
         except ConfigError as exc:
             for line in exc.problems:
                 problems.setdefault(line, []).append(cell.label)
