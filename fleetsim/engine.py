@@ -17,7 +17,8 @@ import numpy as np
 import pandas as pd
 import simpy
 
-from .config import Config, config_hash
+from .config import Config, check_memory, config_hash
+from .errors import FleetsimError
 from .events import EventLog
 from .fleet import Fleet, sample_fleet, stream
 from .policies import make_policy
@@ -27,22 +28,31 @@ from .signals import build_signal_tables
 
 __all__ = ["Result", "simulate", "STREAMS"]
 
+MAX_SEED = 2**63 - 1
+"""The largest seed (seeds are whole numbers from 0 on)."""
+
 STREAMS = ("fleet", "checkin", "battery", "task", "policy", "census")
 
 CENSUS_EVERY_S = 900.0
 """How often the eligible devices are counted (the counts feed eligible shares and hourly load)."""
 
 CENSUS_SAMPLE = 4096
-"""Devices drawn for each count; fleets up to this size are counted whole."""
+"""Devices drawn for each count, spread over (type, region) groups in proportion to size."""
+
+CENSUS_MIN_PER_GROUP = 64
+"""At least this many devices are drawn from each group (all of a smaller group), so that a
+rare group's estimate rests on devices of its own rather than on a share of a uniform draw."""
 
 
 @dataclass
 class Result:
     """One simulation's outcome: the event log, the fleet and the derived tables.
 
-    ``participations``: one row per accepted device (see docs/metrics.md for columns);
-    ``rounds``: one row per round; ``census``: eligible devices counted every 15 minutes by
-    device type and region; ``fleet``: the sampled devices. ``summary`` and ``tables`` come
+    ``participations``: one row per accepted device (see docs/metrics.md for columns; device
+    type, region, outcome, cause, phase and waste cause are labels, pandas Categorical);
+    ``rounds``: one row per round (``status`` a label); ``census``: eligible devices estimated
+    every 15 minutes by device type and region, with standard errors; ``fleet``: the sampled
+    devices. ``summary`` and ``tables`` come
     from :mod:`fleetsim.metrics` on first use.
     """
 
@@ -108,9 +118,14 @@ def simulate(
 
     ``seed`` fixes every random stream; the same config and seed give the same result bit for
     bit. ``on_progress`` is called with the simulated time (s) after each round. Raises
-    ConfigError if the selection policy cannot be built.
+    FleetsimError if ``seed`` is not a whole number from 0 to 2**63 - 1, and ConfigError if
+    the selection policy cannot be built or the run would need more memory than the machine
+    allows (:func:`fleetsim.config.check_memory`), before anything large is allocated.
     """
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or not 0 <= seed <= MAX_SEED:
+        raise FleetsimError(f"seed: expected a whole number from 0 to 2**63 - 1 (got {seed!r})")
     policy = make_policy(config.selection.policy, config.selection.params)
+    check_memory(config, policy.window_s, source="config")
     rngs = {name: stream(seed, name) for name in STREAMS}
     fleet = sample_fleet(config, seed)
     horizon_s = float(config.horizon.duration)
@@ -124,25 +139,22 @@ def simulate(
     server = RoundServer(env, config, runtime, policy, log, rngs, horizon_s, on_progress)
 
     census_times: list[float] = []
-    sampled_rows: list[np.ndarray] = []
-    eligible_rows: list[np.ndarray] = []
+    census_rows: list[tuple[np.ndarray, ...]] = []
 
     def census() -> Generator[Any, Any, None]:
         if env.now < 0:
             yield env.timeout(-env.now)  # count from the horizon start, after the warm-up
         while env.now < horizon_s:
-            sampled, eligible = runtime.census(env.now, CENSUS_SAMPLE)
+            census_rows.append(runtime.census(env.now, CENSUS_SAMPLE, CENSUS_MIN_PER_GROUP))
             census_times.append(env.now)
-            sampled_rows.append(sampled)
-            eligible_rows.append(eligible)
             yield env.timeout(CENSUS_EVERY_S)
 
     env.process(census())
     env.process(server.run())
     env.run()
 
-    census_frame = _census_frame(fleet, census_times, sampled_rows, eligible_rows)
-    rounds_frame, parts_frame = _after_warmup(log.rounds(), log.participations())
+    census_frame = _census_frame(fleet, census_times, census_rows)
+    rounds_frame, parts_frame = _after_warmup(log.rounds(), log.participations(fleet.type_names, fleet.region_names))
     return Result(
         config=config,
         seed=seed,
@@ -174,29 +186,28 @@ def _after_warmup(rounds: pd.DataFrame, parts: pd.DataFrame) -> tuple[pd.DataFra
     return rounds, parts
 
 
-def _census_frame(
-    fleet: Fleet, times: list[float], sampled: list[np.ndarray], eligible: list[np.ndarray]
-) -> pd.DataFrame:
-    """Long table: time_s, device_type, region, sampled, eligible (expected, among the sampled),
-    eligible_est (scaled to the group's size in the fleet)."""
+def _census_frame(fleet: Fleet, times: list[float], rows: list[tuple[np.ndarray, ...]]) -> pd.DataFrame:
+    """Long table, one row per count and (type, region) group: ``time_s``, ``device_type``,
+    ``region``, ``devices`` (the group's size), ``sampled`` (devices drawn), ``eligible``
+    (their summed eligibility probability), ``eligible_est`` (the group's expected eligible
+    devices, stratified estimate) and ``eligible_se`` (its standard error)."""
+    columns = ["time_s", "device_type", "region", "devices", "sampled", "eligible", "eligible_est", "eligible_se"]
+    if not times:
+        return pd.DataFrame(columns=columns)
     n_regions = len(fleet.region_names)
     n_groups = len(fleet.type_names) * n_regions
     group_size = np.bincount(fleet.group, minlength=n_groups)
-    if not times:
-        return pd.DataFrame(columns=["time_s", "device_type", "region", "sampled", "eligible", "eligible_est"])
-    t = np.repeat(np.asarray(times), n_groups)
     groups = np.tile(np.arange(n_groups), len(times))
-    s = np.concatenate(sampled)
-    e = np.concatenate(eligible)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        est = np.where(s > 0, e / s, 0.0) * group_size[groups]
+    drawn, total, estimate, variance = (np.concatenate(parts) for parts in zip(*rows, strict=True))
     return pd.DataFrame(
         {
-            "time_s": t,
+            "time_s": np.repeat(np.asarray(times), n_groups),
             "device_type": pd.Categorical.from_codes(groups // n_regions, fleet.type_names),
             "region": pd.Categorical.from_codes(groups % n_regions, fleet.region_names),
-            "sampled": s,
-            "eligible": e,
-            "eligible_est": est,
+            "devices": group_size[groups],
+            "sampled": drawn,
+            "eligible": total,
+            "eligible_est": estimate,
+            "eligible_se": np.sqrt(variance),
         }
     )

@@ -1,7 +1,9 @@
 """Columnar event log: one row per device participation and one per round.
 
 The engine appends whole arrays per round (never a Python object per event); the log
-concatenates its chunks into DataFrames once, at the end of a run.
+concatenates its chunks into DataFrames once, at the end of a run, and labels the coded
+columns there (pandas Categorical of the names in docs/metrics.md), so that a frame reads
+``parts.query("outcome == 'dropout'")``; ``column.cat.codes`` gives the codes back.
 """
 
 from __future__ import annotations
@@ -12,6 +14,8 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+
+from .client import CAUSES, PHASES
 
 __all__ = ["OUTCOMES", "WASTE_CAUSES", "ROUND_STATUS", "EventLog"]
 
@@ -100,8 +104,24 @@ class EventLog:
             }
         )
 
-    def participations(self) -> pd.DataFrame:
-        return self._frame(self._parts, PARTICIPATION_COLUMNS)
+    def participations(self, type_names: tuple[str, ...], region_names: tuple[str, ...]) -> pd.DataFrame:
+        """One row per participation; device type, region, outcome, cause, phase and waste
+        cause as labels (Categorical; the categories are all the names, in code order)."""
+        frame = self._frame(self._parts, PARTICIPATION_COLUMNS)
+        labels = {
+            "device_type": type_names,
+            "region": region_names,
+            "outcome": OUTCOMES,
+            "cause": CAUSES,
+            "phase": PHASES,
+            "waste_cause": WASTE_CAUSES,
+        }
+        for column, names in labels.items():
+            frame[column] = pd.Categorical.from_codes(frame[column].to_numpy(), list(names))
+        return frame
 
     def rounds(self) -> pd.DataFrame:
-        return self._frame(self._rounds, ROUND_COLUMNS)
+        """One row per round; ``status`` as a label (Categorical of ROUND_STATUS)."""
+        frame = self._frame(self._rounds, ROUND_COLUMNS)
+        frame["status"] = pd.Categorical.from_codes(frame["status"].to_numpy(), list(ROUND_STATUS))
+        return frame

@@ -16,8 +16,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from .client import CAUSES, PHASES
-from .events import OUTCOMES, ROUND_STATUS, WASTE_CAUSES
+from .events import OUTCOMES, ROUND_STATUS
 from .units import format_instant
 
 if TYPE_CHECKING:
@@ -150,6 +149,26 @@ def _bias_table(
     )
 
 
+def _eligible_share_error(
+    estimate: np.ndarray, variance: np.ndarray, drawn: np.ndarray, weight: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Standard error of each group's eligible share, and the devices it rests on.
+
+    Group g's eligible total is X_g = sum_p w[p, g] E_p over (type, region) pairs p with
+    independent estimates E_p of variance V_p; its share is R_g = X_g / T, T = sum_p E_p
+    (each pair's weights sum to 1). By the delta method (first-order Taylor expansion,
+    common practice) Var R_g = sum_p V_p (w[p, g] - R_g)^2 / T^2. The devices a figure rests
+    on: sum_p w[p, g] x devices drawn from p over all counts.
+    """
+    total = estimate.sum()
+    drawn_by_group = drawn @ weight
+    if total <= 0:
+        return np.full(weight.shape[1], np.nan), drawn_by_group
+    share = (estimate @ weight) / total
+    se = np.sqrt(((weight - share[None, :]) ** 2 * variance[:, None]).sum(axis=0)) / total
+    return se, drawn_by_group
+
+
 def _waste_sums(frame: pd.DataFrame) -> dict[str, float]:
     return {
         "compute_s": float(frame["compute_s"].sum()),
@@ -172,7 +191,6 @@ def compute_metrics(result: Result) -> Metrics:
     region_names = list(fleet.region_names)
 
     # ---------------------------------------------------------------- rounds
-    rounds["status"] = pd.Categorical.from_codes(rounds["status"], ROUND_STATUS)
     rounds["selection_s"] = rounds["selected_s"] - rounds["opened_s"]
     rounds["report_s"] = rounds["closed_s"] - rounds["selected_s"]
     rounds["duration_s"] = rounds["closed_s"] - rounds["opened_s"]
@@ -180,15 +198,8 @@ def compute_metrics(result: Result) -> Metrics:
     counts = rounds["status"].value_counts()
     committed = rounds[rounds["status"] == "committed"]
 
-    # ---------------------------------------------------------------- participations, labelled
-    labelled = parts.copy()
-    labelled["device_type"] = pd.Categorical.from_codes(parts["device_type"], type_names)
-    labelled["region"] = pd.Categorical.from_codes(parts["region"], region_names)
-    labelled["outcome"] = pd.Categorical.from_codes(parts["outcome"], OUTCOMES)
-    labelled["cause"] = pd.Categorical.from_codes(parts["cause"], CAUSES)
-    labelled["phase"] = pd.Categorical.from_codes(parts["phase"], PHASES)
-    labelled["waste_cause"] = pd.Categorical.from_codes(parts["waste_cause"], WASTE_CAUSES)
-    labelled["bytes"] = parts["bytes_down"] + parts["bytes_up"]
+    # ---------------------------------------------------------------- participations (labelled)
+    labelled = parts.assign(bytes=parts["bytes_down"] + parts["bytes_up"])
 
     # ---------------------------------------------------------------- waste
     wasted = labelled[~labelled["used"]]
@@ -228,8 +239,12 @@ def compute_metrics(result: Result) -> Metrics:
     used = parts["used"].to_numpy()
     reports_per_device = np.bincount(parts["device"].to_numpy()[used], minlength=n_devices)
     n_regions = len(region_names)
-    eligible_group = census.groupby(["device_type", "region"], observed=False)["eligible_est"].sum()
-    eligible_by_pair = eligible_group.to_numpy().reshape(len(type_names), n_regions)
+    by_pair = census.groupby(["device_type", "region"], observed=False)
+    eligible_by_pair = by_pair["eligible_est"].sum().to_numpy().reshape(len(type_names), n_regions)
+    # Counts are independent draws: variances of the summed estimates add.
+    variance_by_pair = (census["eligible_se"] ** 2).groupby(
+        [census["device_type"], census["region"]], observed=False).sum().to_numpy()
+    drawn_by_pair = by_pair["sampled"].sum().to_numpy().astype(float)
     quartile, quartile_names = _data_quartile(fleet.samples)
     # Eligible device-time by data quartile: census counts are by (type, region); spread each
     # pair's eligible count over quartiles by the pair's quartile mix (documented estimate).
@@ -240,14 +255,25 @@ def compute_metrics(result: Result) -> Metrics:
         mix = np.nan_to_num(mix / mix.sum(axis=1, keepdims=True))
     eligible_by_quartile = (eligible_by_pair.reshape(-1)[:, None] * mix).sum(axis=0)
     part_device = parts["device"].to_numpy()
+    part_type = parts["device_type"].cat.codes.to_numpy().astype(np.int64)
+    part_region = parts["region"].cat.codes.to_numpy().astype(np.int64)
     bias_type = _bias_table(fleet.device_type.astype(np.int64), type_names, parts,
-                            parts["device_type"].to_numpy().astype(np.int64), eligible_by_pair.sum(axis=1),
+                            part_type, eligible_by_pair.sum(axis=1),
                             reports_per_device)
     bias_region = _bias_table(fleet.region.astype(np.int64), region_names, parts,
-                              parts["region"].to_numpy().astype(np.int64), eligible_by_pair.sum(axis=0),
+                              part_region, eligible_by_pair.sum(axis=0),
                               reports_per_device)
     bias_quartile = _bias_table(quartile, quartile_names, parts, quartile[part_device],
                                 eligible_by_quartile, reports_per_device)
+    # Each pair's weight in each group of a table: 0/1 for types and regions, the quartile mix.
+    pair_type = np.repeat(np.arange(len(type_names)), n_regions)
+    pair_region = np.tile(np.arange(n_regions), len(type_names))
+    weights = (np.eye(len(type_names))[pair_type], np.eye(n_regions)[pair_region], mix)
+    for table, weight in zip((bias_type, bias_region, bias_quartile), weights, strict=True):
+        se, drawn = _eligible_share_error(eligible_by_pair.reshape(-1), variance_by_pair, drawn_by_pair, weight)
+        at = table.columns.get_loc("eligible_share") + 1
+        table.insert(at, "eligible_share_se", se)
+        table.insert(at + 1, "eligible_drawn", drawn)
     for table, name in ((bias_type, "device_type"), (bias_region, "region"), (bias_quartile, "data_quartile")):
         table.rename(columns={"group": name}, inplace=True)
 
@@ -302,6 +328,12 @@ def compute_metrics(result: Result) -> Metrics:
     for region in region_names:
         hourly[f"eligible:{region}"] = per_hour_region[region].to_numpy()
     hourly["eligible"] = per_hour_region.sum(axis=1).to_numpy()
+    # Mean of independent counts: variance = sum of the counts' variances / counts^2.
+    per_hour_var = census_h.assign(v=census_h["eligible_se"] ** 2).groupby("hour")["v"].sum()
+    per_hour_var = per_hour_var.div(samples_per_hour ** 2).reindex(hour_index).fillna(0.0)
+    hourly["eligible_se"] = np.sqrt(per_hour_var.to_numpy())
+    per_hour_drawn = census_h.groupby("hour")["sampled"].sum().div(samples_per_hour)
+    hourly["eligible_drawn"] = per_hour_drawn.reindex(hour_index).fillna(0.0).to_numpy()
     hourly["checkins_per_s"] = hourly["eligible"] / config.rounds.checkin_every
     accept_hour = np.floor(parts["accepted_s"].to_numpy() / 3600.0).astype(np.int64)
     ok = accept_hour < n_hours

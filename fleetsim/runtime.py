@@ -2,7 +2,10 @@
 
 Check-in ticks: device i ticks at ``phase_i + k * checkin_every``. Devices are kept sorted
 by phase, so the ticks in a window are one or two contiguous slices found by binary search:
-the cost of a window grows with the check-ins in it, not with the fleet.
+the cost of a window grows with the check-ins in it, not with the fleet. A window longer
+than ``checkin_every`` holds several ticks of a device; the device checks in once, at its
+first tick in the window at which it is eligible (a device that checked in waits for the
+server's answer), so it is one candidate per window.
 
 Eligibility at a tick: the device's memory fits the model, it is neither working nor
 resting, every required signal is on (sampled lazily, see :mod:`fleetsim.signals`), and its
@@ -49,6 +52,11 @@ class FleetRuntime:
         self.last_participation = np.full(n, -np.inf)
         self.participations = np.zeros(n, dtype=np.int32)
         self.group = fleet.group
+        # Devices by (type, region) group, for the stratified census.
+        n_groups = len(fleet.type_names) * len(fleet.region_names)
+        self.by_group = np.argsort(self.group, kind="stable")
+        self.group_size = np.bincount(self.group, minlength=n_groups)
+        self.group_start = np.concatenate([[0], np.cumsum(self.group_size)[:-1]])
         self.signals = SignalState(tables, self.group)
         self.required = [SIGNALS.index(s) for s in config.workload.requires]
         self.min_battery = config.workload.min_battery
@@ -109,11 +117,42 @@ class FleetRuntime:
         return devices[keep], times[keep]
 
     def eligible(self, devices: np.ndarray, times: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Of these ticks, the ones whose device is eligible: positions, battery %, charging.
+        """Of these ticks (in time order), the check-ins: positions, battery %, charging.
 
-        Observes the signals it needs at the tick times and records them (the run's history
-        moves forward); draws the battery level seen at check-in.
+        A device listed several times checks in once, at its first tick at which it is
+        eligible: its later ticks are looked at only while it has not been found eligible, so
+        each device is observed forward in time and is at most one check-in. Observes the
+        signals it needs at the tick times and records them (the run's history moves
+        forward); draws the battery level seen at check-in.
         """
+        # Two ticks of one device lie a whole period apart: a shorter span has no repeats.
+        if devices.size < 2 or times.max() - times.min() < self.checkin_every:
+            return self._eligible_once(devices, times)
+        occurrence = _occurrence(devices)
+        if occurrence.max() == 0:
+            return self._eligible_once(devices, times)
+        # Positions grouped by occurrence: pass k looks at the k-th ticks of devices not yet in.
+        by_pass = np.argsort(occurrence, kind="stable")
+        bounds = np.concatenate([[0], np.cumsum(np.bincount(occurrence))])
+        found: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
+        checked_in = np.empty(0, dtype=devices.dtype)
+        for k in range(bounds.size - 1):
+            pending = by_pass[bounds[k]:bounds[k + 1]]
+            if k:
+                pending = pending[~np.isin(devices[pending], checked_in)]
+            if not pending.size:
+                continue
+            live, battery, charging = self._eligible_once(devices[pending], times[pending])
+            found.append((pending[live], battery, charging))
+            checked_in = np.concatenate([checked_in, devices[pending[live]]])
+        if not found:
+            return self._eligible_once(devices[:0], times[:0])
+        positions, battery, charging = (np.concatenate(parts) for parts in zip(*found, strict=True))
+        in_time = np.argsort(positions, kind="stable")
+        return positions[in_time], battery[in_time], charging[in_time]
+
+    def _eligible_once(self, devices: np.ndarray, times: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """:meth:`eligible` for ticks of distinct devices."""
         rng = self.rngs["checkin"]
         live = np.arange(devices.size)
         for s in self.required:
@@ -144,28 +183,86 @@ class FleetRuntime:
 
     # ------------------------------------------------------------------ measurement
 
-    def census(self, t: float, sample: int) -> tuple[np.ndarray, np.ndarray]:
-        """Sampled devices per (type, region) group and their expected eligible count at ``t``.
+    def census_allocation(self, sample: int, minimum: int) -> np.ndarray:
+        """Devices to draw per (type, region) group: ``sample`` spread in proportion to group
+        sizes, at least ``minimum`` a group, never more than the group holds (so a group of
+        ``minimum`` devices or fewer is counted whole)."""
+        n = max(self.fleet.size, 1)
+        share = np.rint(sample * self.group_size / n).astype(np.int64)
+        return np.minimum(self.group_size, np.maximum(share, minimum))
 
-        Each sampled device adds its probability of being eligible given the run so far (the
-        product of its required signals' on-probabilities and the chance its battery level
-        clears the minimum), so the count has no sampling noise beyond the choice of devices
-        and measuring does not change the run.
+    def census(self, t: float, sample: int, minimum: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """Stratified count of eligible devices at ``t`` per (type, region) group.
+
+        In each group of N devices, n = :meth:`census_allocation` devices are drawn without
+        replacement; each adds its probability of being eligible given the run so far (0 if
+        its memory does not fit or it is busy or resting; else the product of its required
+        signals' on-probabilities and the chance its battery level clears the minimum). The
+        group's estimate is N x the mean of the drawn probabilities: unbiased for the
+        group's expected eligible count. Its variance is N^2 (1 - n / N) s^2 / n, s^2 the
+        sample variance of the drawn probabilities (stratified random sampling, Cochran,
+        Sampling Techniques, 3rd ed., 1977, chapter 5; from memory): 0 for a group counted
+        whole. Nothing is recorded, so measuring does not change the run.
+
+        Returns per group: devices drawn, their summed probability, the estimate, its variance.
         """
-        n = self.fleet.size
-        devices = np.arange(n) if sample >= n else self.rngs["census"].integers(0, n, size=sample)
-        n_groups = len(self.fleet.type_names) * len(self.fleet.region_names)
-        sampled = np.bincount(self.group[devices], minlength=n_groups)
-        live = devices[self.capable[devices] & (self.free_at[devices] <= t)]
-        times = np.full(live.size, t)
-        prob = np.ones(live.size)
+        size = self.group_size
+        drawn = self.census_allocation(sample, minimum)
+        n_groups = size.size
+        if not drawn.any():
+            zero = np.zeros(n_groups)
+            return drawn, zero, zero, zero.copy()
+        devices = self.by_group[self._draw_strata(drawn)]
+        prob = np.zeros(devices.size)
+        live = self.capable[devices] & (self.free_at[devices] <= t)
+        prob[live] = self._eligible_probability(devices[live], t)
+        group = self.group[devices]
+        total = np.bincount(group, weights=prob, minlength=n_groups)
+        squares = np.bincount(group, weights=prob * prob, minlength=n_groups)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = np.where(drawn > 0, total / drawn, 0.0)
+            s2 = np.where(drawn > 1, (squares - drawn * mean * mean) / (drawn - 1), 0.0)
+            fpc = np.where(size > 0, 1.0 - drawn / size, 0.0)
+            variance = np.where(drawn > 0, size * size * fpc * np.maximum(s2, 0.0) / drawn, 0.0)
+        return drawn, total, size * mean, variance
+
+    def _draw_strata(self, drawn: np.ndarray) -> np.ndarray:
+        """Positions into ``by_group``: ``drawn[g]`` distinct devices of each group g, a uniform
+        random subset of the group drawn without replacement (all of it when ``drawn[g]`` is
+        its size)."""
+        rng = self.rngs["census"]
+        size, start = self.group_size, self.group_start
+        parts = []
+        for g in np.flatnonzero(drawn):
+            if drawn[g] == size[g]:
+                parts.append(start[g] + np.arange(size[g]))
+            else:
+                parts.append(start[g] + rng.choice(size[g], size=drawn[g], replace=False))
+        return np.concatenate(parts)
+
+    def _eligible_probability(self, devices: np.ndarray, t: float) -> np.ndarray:
+        """Probability that each (free, capable) device would be eligible at ``t``."""
+        times = np.full(devices.size, t)
+        prob = np.ones(devices.size)
         for s in self.required:
-            prob *= self.signals.probability(live, s, times)
-        types = self.fleet.device_type[live]
+            prob *= self.signals.probability(devices, s, times)
+        types = self.fleet.device_type[devices]
         if _CHARGING in self.required:
             prob *= self.battery_ok_charging[types]
         else:
-            q = self.signals.probability(live, _CHARGING, times)
+            q = self.signals.probability(devices, _CHARGING, times)
             prob *= q * self.battery_ok_charging[types] + (1 - q) * self.battery_ok_unplugged[types]
-        eligible = np.bincount(self.group[live], weights=prob, minlength=n_groups)
-        return sampled, eligible
+        return prob
+
+
+def _occurrence(devices: np.ndarray) -> np.ndarray:
+    """For each entry, how many earlier entries name the same device (0 for the first)."""
+    if devices.size < 2:
+        return np.zeros(devices.size, dtype=np.int64)
+    order = np.argsort(devices, kind="stable")
+    ranked = devices[order]
+    index = np.arange(devices.size)
+    run_start = np.maximum.accumulate(np.where(np.r_[True, ranked[1:] != ranked[:-1]], index, 0))
+    occurrence = np.empty(devices.size, dtype=np.int64)
+    occurrence[order] = index - run_start
+    return occurrence

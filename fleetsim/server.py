@@ -9,6 +9,11 @@ told to stop; a device already uploading finishes and its report is refused as l
 next round opens after the aggregation time. A server outage loses the round it cuts and
 holds the next one until it ends. Every accepted device then rests for ``rest``.
 
+A device is in a round at most once: within a collection window it is one candidate (its
+first eligible tick, however often it ticks in the window), from acceptance it is busy until
+its participation ends and its rest is over, and the engine refuses a policy's choice that
+names a device twice or one the round already holds (FleetsimError).
+
 simpy drives only these server-side events; each cohort's tasks are resolved in bulk
 (:mod:`fleetsim.client`).
 """
@@ -99,9 +104,15 @@ class RoundServer:
 
     # -------------------------------------------------------------------------- one round
 
-    def _select(self, opened: float) -> tuple[Any, ...]:
-        """Fill the round: accepted devices, check-in and acceptance times, battery %, charging;
-        the selection's end; eligible check-ins seen."""
+    def _select(self, opened: float, index: int) -> tuple[Any, ...]:
+        """Fill round ``index``: accepted devices, check-in and acceptance times, battery %,
+        charging; the selection's end; the eligible check-ins seen from ``opened`` to the
+        selection's end (one per device and window; a ranking policy's windows look only at
+        as many as it can use).
+
+        Raises FleetsimError naming the policy, the round and the time if the policy's choice
+        is out of range, names a device twice, or names one the round already holds.
+        """
         rounds = self.config.rounds
         runtime, policy = self.runtime, self.policy
         rng = self.rngs["policy"]
@@ -115,6 +126,7 @@ class RoundServer:
         t = opened
         checkins = 0
         selected_at = timeout_at
+        in_round = np.zeros(runtime.fleet.size, dtype=bool)
         while needed > 0 and t < timeout_at:
             length = policy.window_s
             if not policy.holds_checkins and self._rate:
@@ -122,7 +134,7 @@ class RoundServer:
                 length = min(length, max(1.0, 2.0 * needed / self._rate))
             end = min(t + length, timeout_at)
             view = RoundView(
-                round_index=self.round_index,
+                round_index=index,
                 opened_s=opened,
                 now_s=t,
                 timeout_s=timeout_at,
@@ -140,27 +152,50 @@ class RoundServer:
                 continue
             candidates = runtime.candidates(devices, times, battery, charging)
             chosen = np.asarray(policy.choose(candidates, view, rng), dtype=np.int64)
-            if chosen.size > needed or (chosen.size and (chosen.min() < 0 or chosen.max() >= devices.size)) \
-                    or np.unique(chosen).size != chosen.size:
-                raise FleetsimError(
-                    f"selection policy {type(policy).__name__} returned invalid positions "
-                    f"(need at most {needed} distinct positions in 0..{devices.size - 1})"
-                )
+            self._check_choice(chosen, devices, needed, in_round, index, t)
             if chosen.size:
                 chosen.sort()
                 at = times[chosen] if not policy.holds_checkins else np.full(chosen.size, end)
                 chunks.append((devices[chosen], times[chosen], at, battery[chosen], charging[chosen]))
                 runtime.free_at[devices[chosen]] = np.inf  # busy: no more check-ins
+                in_round[devices[chosen]] = True
                 np.add.at(by_type, runtime.fleet.device_type[devices[chosen]], 1)
                 needed -= chosen.size
                 if needed == 0:
                     selected_at = float(at.max())
+                    # A causal policy's window may run past the selection's end: those check-ins
+                    # came after the round was full and are not the selection's.
+                    checkins -= int((times > selected_at).sum())
             t = end
         if not chunks:
             empty = np.empty(0)
             return empty.astype(np.int64), empty, empty, empty, empty.astype(bool), timeout_at, checkins
         devices, checkin, at, battery, charging = (np.concatenate(parts) for parts in zip(*chunks, strict=True))
         return devices, checkin, at, battery, charging, selected_at, checkins
+
+    def _check_choice(
+        self, chosen: np.ndarray, devices: np.ndarray, needed: int, in_round: np.ndarray, index: int, t: float
+    ) -> None:
+        """Raise FleetsimError unless ``chosen`` names at most ``needed`` positions in range, and
+        distinct devices the round does not already hold (a device is in a round at most once)."""
+        name = type(self.policy).__name__
+        where = f"in round {index} at t={t:.3f} s"
+        if chosen.size > needed or (chosen.size and (chosen.min() < 0 or chosen.max() >= devices.size)):
+            raise FleetsimError(
+                f"selection policy {name} returned invalid positions {where} "
+                f"(need at most {needed} distinct positions in 0..{devices.size - 1})"
+            )
+        picked = devices[chosen]
+        unique, counts = np.unique(picked, return_counts=True)
+        twice = unique[counts > 1]
+        held = picked[in_round[picked]]
+        if twice.size or held.size:
+            device = int(twice[0]) if twice.size else int(held[0])
+            what = "twice" if twice.size else "already accepted in this round"
+            raise FleetsimError(
+                f"selection policy {name} returned invalid positions {where}: device {device} {what} "
+                f"(a device is in a round at most once)"
+            )
 
     def _window(
         self, start: float, end: float, view: RoundView, rng: np.random.Generator
@@ -176,8 +211,14 @@ class RoundServer:
         devices, times = runtime.free_ticks(start, end)
         ranker = getattr(self.policy, "rank", None)
         key = None
+        # A window longer than the check-in period holds several ticks of a device; it is ranked
+        # once (at its first tick) and its ticks are looked at together (runtime.eligible).
+        repeats = end - start > runtime.checkin_every
+        first = np.unique(devices, return_index=True)[1] if repeats else np.arange(devices.size)
+        first.sort()
         if ranker is not None and devices.size:
-            blank = runtime.candidates(devices, times, np.full(devices.size, np.nan), np.zeros(devices.size, bool))
+            d0, t0 = devices[first], times[first]
+            blank = runtime.candidates(d0, t0, np.full(d0.size, np.nan), np.zeros(d0.size, bool))
             key = ranker(blank, view, rng)
         if key is None:
             live, battery, charging = runtime.eligible(devices, times)
@@ -202,9 +243,10 @@ class RoundServer:
                 remaining = np.setdiff1d(remaining, batch, assume_unique=True)
             else:
                 batch, remaining = remaining, remaining[:0]
-            live, battery, charging = runtime.eligible(devices[batch], times[batch])
+            ticks = first[batch] if not repeats else np.flatnonzero(np.isin(devices, devices[first[batch]]))
+            live, battery, charging = runtime.eligible(devices[ticks], times[ticks])
             self._eligible_share = min(1.0, max(live.size / batch.size, 0.01))
-            found.append((batch[live], battery, charging))
+            found.append((ticks[live], battery, charging))
             count += live.size
         if not found:
             empty = np.empty(0)
@@ -221,7 +263,7 @@ class RoundServer:
         fleet = runtime.fleet
         index = self.round_index
         self.round_index += 1
-        devices, checkin_s, accept_s, battery, charging, selected_at, checkins = self._select(opened)
+        devices, checkin_s, accept_s, battery, charging, selected_at, checkins = self._select(opened, index)
         selected_at, checkins = float(selected_at), int(checkins)
         n = devices.size
         enough = n >= rounds.required_reports

@@ -15,7 +15,11 @@ Everything is simulated the slow, obvious way, with one simpy process per device
 - a device ticks at ``phase + k * checkin_every``; at a tick during a round's selection it
   checks in if it is eligible (memory fits, not working, not resting, every required signal
   on, and a battery level drawn from its type's Beta(mean, sd) for its charging state at
-  or above the minimum); the round accepts check-ins first come, first served;
+  or above the minimum); the round accepts check-ins first come, first served. An accepted
+  device is working, and a device that took part in a round never checks in to it again
+  (even with no rest), so a device is in a round at most once and checks in at its first
+  eligible tick: the engine's "one candidate per device and collection window" is this
+  rule for arrival-order selection;
 - an accepted device downloads, trains and uploads with real simpy timeouts, interrupted by
   one of its required signals turning off, a crash (exponential hazard), the OS execution
   limit (measured from acceptance), the battery falling below the minimum (linear drain per
