@@ -7,7 +7,9 @@ problem) with exit status 2, never a traceback.
 from __future__ import annotations
 
 import json
+import math
 import sys
+import unicodedata
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -15,13 +17,107 @@ from typing import Any
 
 import typer
 
-from .config import Config, config_schema, example_path, load_config
+from .config import Config, check_memory, config_schema, example_path, load_config
 from .engine import simulate
 from .errors import ConfigError, FleetsimError
-from .output import write_run
+from .output import check_target, write_run
 from .policies import BUILTIN_POLICIES, make_policy
 
+try:  # typer vendors its own copy of click from 0.22 on
+    from typer._click import exceptions as _usage
+except ImportError:  # pragma: no cover - older typer on click
+    import click.exceptions as _usage  # type: ignore[no-redef]
+
+from typer.core import TyperGroup
+
+_SEED_OPTIONS = ("seed", "first_seed")
+_MAX_SEED = 2**63 - 1
+
+
+def _one_line(text: str) -> str:
+    """``text`` with every character that could break or reorder a terminal line escaped."""
+    return "".join(
+        char if char == " " or (char.isprintable() and unicodedata.category(char) not in ("Cf", "Zl", "Zp"))
+        else char.encode("unicode_escape").decode("ascii")
+        for char in text
+    )
+
+
+def _usage_line(exc: Exception) -> str:
+    """One ``error:`` line for a command-line usage error: the option, what was wrong, the value."""
+    if isinstance(exc, _usage.NoSuchOption):
+        near = f"; did you mean {', '.join(sorted(exc.possibilities))}?" if exc.possibilities else ""
+        return f"{exc.option_name}: unknown option{near} (see --help)"
+    if isinstance(exc, _usage.BadParameter):
+        param = exc.param
+        hint = exc.param_hint or (param.opts[0] if param is not None and getattr(param, "opts", None) else None)
+        hint = hint or (getattr(param, "human_readable_name", None) or "option")
+        if isinstance(hint, (list, tuple)):
+            hint = " / ".join(hint)
+        hint = str(hint).strip('"\'')
+        if isinstance(exc, _usage.MissingParameter):
+            return f"{hint}: missing; see --help"
+        cause: Any = exc.__cause__
+        errors = cause.errors() if hasattr(cause, "errors") else []
+        if errors:
+            kind = "a whole number" if "integer" in errors[0]["msg"] else "a number"
+            return f"{hint}: expected {kind} (got {errors[0]['input']!r})"
+        return f"{hint}: {exc.format_message()}"
+    if isinstance(exc, _usage.BadOptionUsage):
+        return f"{exc.option_name}: {exc.format_message()}"
+    return str(getattr(exc, "format_message", exc.__str__)())
+
+
+def _check_seeds(callback: Callable[..., Any]) -> Callable[..., Any]:
+    """Wrap a command so that seed options are whole numbers from 0 to 2**63 - 1."""
+    def checked(*args: Any, **kwargs: Any) -> Any:
+        for key in _SEED_OPTIONS:
+            value = kwargs.get(key)
+            if value is not None and not 0 <= value <= _MAX_SEED:
+                option = "--" + key.replace("_", "-")
+                typer.echo(f"error: {option}: expected a whole number from 0 to 2**63 - 1 (got {value})", err=True)
+                raise typer.Exit(2)
+        return callback(*args, **kwargs)
+
+    checked._seeds_checked = True  # type: ignore[attr-defined]
+    return checked
+
+
+class _Commands(TyperGroup):
+    """The command group: usage errors are ``error:`` lines with exit status 2, like file errors."""
+
+    def get_command(self, ctx: Any, cmd_name: str) -> Any:
+        command = super().get_command(ctx, cmd_name)
+        if command is not None and command.callback is not None and not hasattr(command.callback, "_seeds_checked") \
+                and any(p.name in _SEED_OPTIONS for p in command.params):
+            command.callback = _check_seeds(command.callback)
+        return command
+
+    def main(self, args: Any = None, prog_name: str | None = None, complete_var: str | None = None,  # type: ignore[override]
+             standalone_mode: bool = True, **extra: Any) -> Any:
+        try:
+            code = super().main(args=args, prog_name=prog_name, complete_var=complete_var,
+                                standalone_mode=False, **extra)
+            code = code if isinstance(code, int) else 0
+        except _usage.NoArgsIsHelpError as exc:
+            typer.echo(exc.format_message())
+            code = 0
+        except _usage.UsageError as exc:
+            typer.echo(f"error: {_one_line(_usage_line(exc))}", err=True)
+            code = 2
+        except _usage.ClickException as exc:
+            typer.echo(f"error: {_one_line(exc.format_message())}", err=True)
+            code = exc.exit_code
+        except typer.Abort:
+            typer.echo("Aborted!", err=True)
+            code = 1
+        if standalone_mode:
+            sys.exit(code)
+        return code
+
+
 app = typer.Typer(
+    cls=_Commands,
     name="fleetsim",
     help="Simulate a device fleet taking part in Federated Averaging rounds.",
     no_args_is_help=True,
@@ -34,25 +130,73 @@ SetOpt = typer.Option([], "--set", help="Override a key of the file: key.path=va
 
 
 def fail(error: FleetsimError) -> None:
+    """Print ``error`` as ``error:`` lines on stderr (each one line, control characters
+    escaped) and exit with status 2."""
     lines = error.problems if isinstance(error, ConfigError) else str(error).splitlines() or [repr(error)]
     for line in lines:
-        typer.echo(f"error: {line}", err=True)
+        typer.echo(f"error: {_one_line(line)}", err=True)
     raise typer.Exit(2)
+
+
+MAX_DEVICES = 100_000_000
+
+
+def _check_options(devices: int | None, days: float | None) -> None:
+    """--devices and --days, refused before they reach the file (naming the option)."""
+    problems = []
+    if devices is not None and (isinstance(devices, bool) or not 1 <= devices <= MAX_DEVICES):
+        problems.append(f"--devices: expected a whole number from 1 to {MAX_DEVICES:,} (got {devices})")
+    if days is not None and not (math.isfinite(days) and days * 86400.0 >= 0.001):
+        problems.append(f"--days: expected a positive, finite number of days (got {days})")
+    if problems:
+        raise ConfigError(problems)
+
+
+def _as_option(problems: list[str], prefix: str, option: str, value: Any) -> list[str]:
+    """Lines about a key an option set, reworded to name the option and its value as typed."""
+    out = []
+    for line in problems:
+        if line.startswith(prefix):
+            rest = line[len(prefix):]
+            cut = rest.rfind(" (got ")
+            rest = rest[:cut] if cut >= 0 and rest.endswith(")") else rest
+            line = f"{option}: {rest} (got {value})"
+        out.append(line)
+    return out
 
 
 def read_config(
     file: Path | None, overrides: list[str], devices: int | None = None, days: float | None = None
 ) -> Config:
-    """Load the fleet file with --set, --devices and --days applied (all validated alike)."""
+    """Load the fleet file with --set, --devices and --days applied (all validated alike).
+
+    Also builds the selection policy and refuses a run whose estimated memory exceeds 75% of
+    physical memory. Raises ConfigError; lines about --devices/--days name the option.
+    """
     path = file if file is not None else example_path()
+    _check_options(devices, days)
     extra = list(overrides)
+    names: dict[str, str] = {}
     if devices is not None:
         extra.append(f"fleet.devices={devices}")
+        names["fleet.devices"] = "--devices"
     if days is not None:
-        extra.append(f"horizon.duration={days}d")
-    config = load_config(path, extra)
-    # An unimportable plug-in fails now, naming the file.
-    make_policy(config.selection.policy, config.selection.params, source=f"{path}: selection")
+        extra.append(f"horizon.duration={days * 86400.0!r}")
+        names["horizon.duration"] = "--days"
+    try:
+        config = load_config(path, extra)
+        # An unimportable plug-in fails now, naming the file.
+        policy = make_policy(config.selection.policy, config.selection.params, source=f"{path}: selection")
+        check_memory(config, float(policy.window_s), str(path), names=names)
+    except ConfigError as exc:
+        lines = exc.problems
+        if devices is not None:
+            lines = _as_option(lines, f"{path}: fleet.devices: ", "--devices", devices)
+            lines = _as_option(lines, "--devices: ", "--devices", devices)
+        if days is not None:
+            lines = _as_option(lines, f"{path}: horizon.duration: ", "--days", days)
+            lines = _as_option(lines, "--days: ", "--days", days)
+        raise ConfigError(lines) from None
     return config
 
 
@@ -117,20 +261,30 @@ def render_summary(summary: dict[str, Any]) -> str:
 @app.command()
 def run(
     file: Path | None = FileArg,
-    out: Path = typer.Option(Path("out"), "--out", "-o", help="Output folder (replaced whole)."),
+    out: Path = typer.Option(
+        Path("out"), "--out", "-o",
+        help="Output folder: a new or empty one, or an earlier fleetsim output with --force.",
+    ),
     seed: int = typer.Option(0, "--seed", help="Seed of every random stream."),
     days: float | None = typer.Option(None, "--days", help="Horizon length in days (overrides the file)."),
     devices: int | None = typer.Option(None, "--devices", help="Fleet size (overrides the file)."),
     overrides: list[str] = SetOpt,
     report: bool = typer.Option(False, "--report", help="Also write report.html and report.md."),
+    force: bool = typer.Option(
+        False, "--force", help="Replace an earlier fleetsim output at --out (never a folder fleetsim did not write)."
+    ),
 ) -> None:
     """Simulate the fleet file and write summary.json, events.parquet and tables/ to --out."""
     try:
         config = read_config(file, overrides, devices, days)
+        source = file if file is not None else example_path()
+        label = f"--out {out}"
+        check_target(out, "run", force, [source], label)  # refuse before simulating, not after
         with progress_bar(config.horizon.duration, "simulating") as tick:
             result = simulate(config, seed=seed, on_progress=tick)
-        result.source = str(file if file is not None else example_path())
-        write_run(result, out)
+        result.source = str(source)
+        write_run(result, out, force=force, inputs=[source], label=label,
+                  notice=lambda line: typer.echo(line, err=True))
         if report:
             from .report import write_report
 

@@ -8,20 +8,35 @@ Layout of a run folder::
     rounds.parquet      one row per round
     census.parquet      eligible devices counted every 15 minutes by type and region
     tables/*.csv        every derived table
+    .fleetsim-output    the marker: {"kind": "run", "fleetsim": version, "created": UTC time}
 
-Files are written into a fresh sibling folder that replaces the target only once all of
-them are complete, so an interrupted or failed write leaves no half-written folder.
+Files are written into a fresh sibling folder (``.NAME.partial-*``) that replaces the target
+only once all of them are complete, so an interrupted or failed write leaves no half-written
+folder. Nothing fleetsim did not write is ever replaced: every folder it writes (run, sweep
+and comparison folders) carries the marker file :data:`MARKER`; a target that exists, is not
+empty and has no marker is refused, and replacing an earlier output needs ``force``
+(``--force``). :func:`check_target` holds these rules; :func:`clean_leftovers` removes the
+temporary folders a killed process left beside a target. Every CSV goes through
+:func:`write_csv`, which escapes text cells a spreadsheet would read as a formula.
 """
 
 from __future__ import annotations
 
+import ctypes
+import errno
+import functools
+import hashlib
 import json
 import os
+import re
 import shutil
+import sys
 import tempfile
-from collections.abc import Callable
+import time
+from collections.abc import Callable, Iterable
+from datetime import datetime, timezone
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import pandas as pd
 
@@ -30,66 +45,468 @@ from .errors import FleetsimError
 if TYPE_CHECKING:
     from .engine import Result
 
-__all__ = ["write_run", "atomic_folder", "atomic_text", "atomic_save", "event_frame", "read_summary", "PARTIAL"]
+__all__ = [
+    "write_run", "atomic_folder", "atomic_text", "atomic_save", "event_frame", "read_summary", "PARTIAL",
+    "MARKER", "read_marker", "check_target", "claim_study", "clean_leftovers", "safe_name", "inside",
+    "escape_cell", "unescape_cell", "csv_frame", "unescape_frame", "write_csv",
+]
 
 PARTIAL = ".partial-"
 """Prefix of temporary files written beside their target (left over only by a killed process)."""
 
+MARKER = ".fleetsim-output"
+"""Name of the marker file in every folder fleetsim writes: JSON with kind, version and time."""
+
+KINDS = ("run", "sweep", "compare", "study")
+"""Kinds of output folder; ``study`` is a study folder not yet claimed by a sweep or comparison."""
+
+# The marker kinds a folder may already carry for a write of each kind to go ahead without
+# force: a study resumes in its own folder, a run never replaces anything unasked.
+_RESUMES = {"run": set(), "sweep": {"sweep", "study"}, "compare": {"compare", "study"},
+            "study": {"sweep", "compare", "study"}}
+_KIND_WORDS = {"run": "run", "sweep": "sweep", "compare": "comparison", "study": "study"}
+_HOLDER = "old"  # marker kind of the folder an output being replaced is moved into
+
+_STARTED = time.time()
+"""When this process loaded fleetsim (or was forked): only temporary folders older than this are leftovers."""
+
+
+def _restart_clock() -> None:
+    global _STARTED
+    _STARTED = time.time()  # a forked child is a new process: older folders may be its parent's leftovers
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_restart_clock)
+
+_LEFTOVER = re.compile(r"\.(partial|old)-[a-z0-9_]{8}")  # after ".NAME"; tempfile.mkdtemp's 8 characters
+
 
 def event_frame(result: Result) -> pd.DataFrame:
-    """The event log with readable labels and ISO 8601 UTC timestamps."""
-    from .client import CAUSES, PHASES
-    from .events import OUTCOMES, WASTE_CAUSES
-
+    """The event log (already labelled, ``Result.participations``) with ISO 8601 UTC timestamps."""
     parts = result.participations
-    fleet = result.fleet
     start = pd.Timestamp(result.config.horizon.start)
     frame = parts.copy()
-    frame["device_type"] = pd.Categorical.from_codes(parts["device_type"], fleet.type_names)
-    frame["region"] = pd.Categorical.from_codes(parts["region"], fleet.region_names)
-    frame["outcome"] = pd.Categorical.from_codes(parts["outcome"], OUTCOMES)
-    frame["cause"] = pd.Categorical.from_codes(parts["cause"], CAUSES)
-    frame["phase"] = pd.Categorical.from_codes(parts["phase"], PHASES)
-    frame["waste_cause"] = pd.Categorical.from_codes(parts["waste_cause"], WASTE_CAUSES)
     frame.insert(5, "accepted_utc", start + pd.to_timedelta(parts["accepted_s"], unit="s"))
     frame.insert(7, "ended_utc", start + pd.to_timedelta(parts["ended_s"], unit="s"))
     return frame
 
 
-def atomic_folder(target: Path, fill: Callable[[Path], None]) -> Path:
-    """Call ``fill(tmp)`` on a fresh folder beside ``target``, then put it in place of ``target``.
+# ------------------------------------------------------------------------- markers and targets
 
-    Raises FleetsimError if the parent cannot be written or ``target`` is a file.
-    """
-    target = Path(target)
-    if target.exists() and not target.is_dir():
-        raise FleetsimError(f"{target}: exists and is not a folder")
-    parent = target.resolve().parent
+
+def _reason(exc: BaseException) -> str:
+    """A one-line reason for an OS error (pyarrow's carry only a message)."""
+    text = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc) or type(exc).__name__
+    return " ".join(text.split())
+
+
+def marker_text(kind: str) -> str:
+    """The marker file's JSON for a folder of ``kind`` (see :data:`KINDS`)."""
+    from . import __version__
+
+    created = datetime.now(timezone.utc).isoformat(timespec="seconds")
+    return json.dumps({"kind": kind, "fleetsim": __version__, "created": created}) + "\n"
+
+
+def read_marker(folder: str | Path) -> dict[str, Any] | None:
+    """The marker of ``folder`` as a dict with a string ``kind``, or None when it has none."""
+    path = Path(folder) / MARKER
     try:
-        parent.mkdir(parents=True, exist_ok=True)
-        tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.partial-", dir=parent))
-        tmp.chmod(0o755)  # mkdtemp makes it private; a run folder is as readable as any output
+        if path.is_symlink() or not path.is_file():
+            return None
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    return data if isinstance(data, dict) and isinstance(data.get("kind"), str) else None
+
+
+def _home() -> Path | None:
+    try:
+        return Path.home().resolve()
+    except (RuntimeError, KeyError, OSError):
+        return None
+
+
+def check_target(
+    target: str | Path, kind: str = "run", force: bool = False, inputs: Iterable[str | Path] = (),
+    label: str | None = None,
+) -> Path:
+    """Check that a write of ``kind`` may go to the folder ``target``; return it as an absolute path.
+
+    Refused (FleetsimError, one line starting with ``label``, default the path): the current
+    folder or any folder holding it, the root, the home folder, a folder holding one of the
+    ``inputs`` (the fleet file, a stress file), something that is not a folder, a non-empty
+    folder without fleetsim's marker, and a fleetsim folder this write would replace unless
+    ``force`` (a sweep or comparison resumes in a folder of its own kind without it).
+    Nothing is touched.
+    """
+    label = label or str(target)
+    if str(target) in ("", "."):
+        raise FleetsimError(f"{label}: is the current folder; choose a new folder")
+    where = Path(os.path.abspath(target))  # '..' folded lexically; a final symbolic link kept as is
+    resolved = where.resolve()
+    if resolved == Path(resolved.anchor):
+        raise FleetsimError(f"{label}: is the root folder; choose a new folder")
+    if resolved == _home():
+        raise FleetsimError(f"{label}: is your home folder; choose a new folder")
+    cwd = Path.cwd().resolve()
+    if resolved == cwd or resolved in cwd.parents:
+        raise FleetsimError(f"{label}: is the current folder or one that holds it; choose a new folder")
+    for source in inputs:
+        holder = Path(source).resolve().parent
+        if resolved == holder or resolved in holder.parents:
+            raise FleetsimError(f"{label}: holds the input file {source}; choose a new folder")
+    if os.path.lexists(where) and not where.is_dir():
+        raise FleetsimError(f"{label}: exists and is not a folder; choose a new folder")
+    if where.is_dir():
+        try:
+            empty = not os.listdir(where)
+        except OSError as exc:
+            raise FleetsimError(f"{label}: cannot read the folder ({_reason(exc)})") from None
+        if not empty:
+            marker = read_marker(where)
+            if marker is None or marker["kind"] not in KINDS:
+                raise FleetsimError(f"{label}: exists and is not a fleetsim output folder; choose a new folder")
+            if marker["kind"] not in _RESUMES[kind] and not force:
+                word = _KIND_WORDS[marker["kind"]]
+                raise FleetsimError(
+                    f"{label}: holds an earlier fleetsim {word}; pass --force to replace it, or choose another folder"
+                )
+            if marker["kind"] not in _RESUMES[kind]:  # to be replaced: only if all of it is ours
+                extra = _foreign(where, marker["kind"])
+                if extra:
+                    names = ", ".join(extra[:3]) + (", ..." if len(extra) > 3 else "")
+                    raise FleetsimError(f"{label}: holds files fleetsim did not write ({names}); "
+                                        "move them away or choose another folder")
+    return where
+
+
+# What a folder of each kind may hold (anything else was put there by someone else): names
+# at the top, and the file name patterns allowed in each subfolder.
+_RUN_FILES = {"summary.json", "config.json", "events.parquet", "rounds.parquet", "census.parquet",
+              "report.html", "report.md"}
+_STUDY_FILES = {"front.csv", "study.json", "study.md", "comparison.json", "comparison.md", "frontier.png",
+                "frontier.svg", *(f"{stem}.{ext}" for stem in ("runs", "cell_means", "differences")
+                                  for ext in ("parquet", "csv"))}
+_SUBFOLDERS = {"run": {"tables": re.compile(r"[^/]+\.csv")},
+               "study": {"cells": re.compile(r"[0-9a-f]+\.json"), "heatmaps": re.compile(r"[^/]+\.(png|svg)")}}
+_TEMPORARY = re.compile(r"\.partial-.*|\..+\.partial")  # atomic_text, atomic_save and the report's temporary files
+
+
+def _foreign(where: Path, kind: str) -> list[str]:
+    """Entries of the fleetsim folder ``where`` (of ``kind``) that fleetsim would not have written."""
+    group = "run" if kind == "run" else "study"
+    files = _RUN_FILES if group == "run" else _STUDY_FILES
+    subfolders = _SUBFOLDERS[group]
+    extra = []
+    for entry in sorted(os.scandir(where), key=lambda e: e.name):
+        if entry.name == MARKER or _TEMPORARY.fullmatch(entry.name):
+            continue
+        if entry.is_symlink():
+            extra.append(entry.name)
+        elif entry.name in subfolders and entry.is_dir():
+            pattern = subfolders[entry.name]
+            for child in sorted(os.scandir(entry.path), key=lambda e: e.name):
+                if child.is_symlink() or not child.is_file() or not (
+                        pattern.fullmatch(child.name) or _TEMPORARY.fullmatch(child.name)):
+                    extra.append(f"{entry.name}/{child.name}")
+        elif entry.name not in files or not entry.is_file():
+            extra.append(entry.name)
+    return extra
+
+
+def _remove(path: Path) -> None:
+    """Delete a folder fleetsim made, its marker last, so one half-removed still shows it is ours."""
+    try:
+        if path.is_symlink() or not path.is_dir():
+            path.unlink(missing_ok=True)
+            return
+        for child in os.scandir(path):
+            if child.name == MARKER:
+                continue
+            if child.is_dir(follow_symlinks=False):
+                shutil.rmtree(child.path, ignore_errors=True)
+            else:
+                os.unlink(child.path)
+        (path / MARKER).unlink(missing_ok=True)
+        path.rmdir()
+    except OSError:
+        pass  # what is left carries our naming and is removed by the next write to this target
+
+
+def clean_leftovers(target: str | Path, notice: Callable[[str], None] | None = None) -> list[str]:
+    """Remove the temporary folders (``.NAME.partial-*``, ``.NAME.old-*``) a killed write left beside
+    ``target``; return their names.
+
+    Only folders with exactly that naming, older than this process, and empty or carrying the
+    marker are removed. If ``target`` itself is missing and a leftover holds the output it was
+    replacing, that output is put back first. ``notice`` (default: stderr) gets one line.
+    """
+    where = Path(os.path.abspath(target))
+    prefix = f".{where.name}"
+    try:
+        entries = sorted(os.scandir(where.parent), key=lambda e: e.name)
+    except OSError:
+        return []
+    removed, restored = [], False
+    for entry in entries:
+        if not entry.name.startswith(prefix) or not _LEFTOVER.fullmatch(entry.name[len(prefix):]):
+            continue
+        path = Path(entry.path)
+        try:
+            if entry.is_symlink() or not entry.is_dir() or entry.stat().st_mtime >= _STARTED:
+                continue
+            children = os.listdir(path)
+        except OSError:
+            continue
+        if children and read_marker(path) is None:
+            continue
+        previous = path / "previous"
+        if not restored and not os.path.lexists(where) and read_marker(previous) is not None:
+            try:
+                os.replace(previous, where)
+                restored = True
+            except OSError:
+                pass
+        _remove(path)
+        removed.append(entry.name)
+    if removed:
+        line = (f"note: removed {len(removed)} leftover temporary folder(s) of an interrupted fleetsim write "
+                f"beside {target}: {', '.join(removed)}" + ("; the previous output was put back" if restored else ""))
+        (notice or (lambda text: print(text, file=sys.stderr)))(line)
+    return removed
+
+
+@functools.cache
+def _renameat2() -> Any:
+    if not sys.platform.startswith("linux"):
+        return None
+    try:
+        function = ctypes.CDLL(None, use_errno=True).renameat2
+    except (OSError, AttributeError):
+        return None
+    function.argtypes = [ctypes.c_int, ctypes.c_char_p, ctypes.c_int, ctypes.c_char_p, ctypes.c_uint]
+    return function
+
+
+def _exchange(a: Path, b: Path) -> bool:
+    """Swap two paths in one atomic step (Linux renameat2 with RENAME_EXCHANGE); False where unsupported."""
+    function = _renameat2()
+    if function is None:
+        return False
+    at_cwd, rename_exchange = -100, 2  # AT_FDCWD and RENAME_EXCHANGE from <fcntl.h> and <linux/fs.h>
+    if function(at_cwd, os.fsencode(a), at_cwd, os.fsencode(b), rename_exchange) == 0:
+        return True
+    code = ctypes.get_errno()
+    if code in (errno.EINVAL, errno.ENOSYS, errno.EOPNOTSUPP, errno.ENOTSUP):
+        return False
+    raise OSError(code, os.strerror(code), str(b))
+
+
+def _put_in_place(tmp: Path, target: Path) -> Path | None:
+    """Move the finished folder ``tmp`` to ``target``; return the path now holding what ``target``
+    held (to be removed), or None.
+
+    The swap is one atomic step where the system allows; elsewhere the old folder is first
+    moved into a marked ``.NAME.old-*`` folder, which the next write puts back if this process
+    is killed in between.
+    """
+    if not os.path.lexists(target):
+        os.rename(tmp, target)
+        return None
+    if _exchange(tmp, target):
+        return tmp
+    holder = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=target.parent))
+    (holder / MARKER).write_text(marker_text(_HOLDER), encoding="utf-8")
+    os.replace(target, holder / "previous")
+    try:
+        os.replace(tmp, target)
+    except OSError:
+        os.replace(holder / "previous", target)
+        _remove(holder)
+        raise
+    return holder
+
+
+def _new_folder(where: Path, kind: str, label: str) -> Path:
+    """A fresh folder beside ``where`` (``.NAME.partial-*``) carrying the marker of ``kind``."""
+    tmp: Path | None = None
+    try:
+        where.parent.mkdir(parents=True, exist_ok=True)
+        tmp = Path(tempfile.mkdtemp(prefix=f".{where.name}.partial-", dir=where.parent))
+        tmp.chmod(0o755)  # mkdtemp makes it private; an output folder is as readable as any output
+        (tmp / MARKER).write_text(marker_text(kind), encoding="utf-8")
     except OSError as exc:
-        raise FleetsimError(f"{target}: cannot create the output folder ({exc.strerror or exc})") from None
+        if tmp is not None:
+            _remove(tmp)
+        raise FleetsimError(f"{label}: cannot create the output folder ({_reason(exc)})") from None
+    return tmp
+
+
+def atomic_folder(
+    target: str | Path, fill: Callable[[Path], None], *, kind: str = "run", force: bool = False,
+    inputs: Iterable[str | Path] = (), label: str | None = None, notice: Callable[[str], None] | None = None,
+) -> Path:
+    """Call ``fill(tmp)`` on a fresh marked folder beside ``target``, then put it in place of ``target``.
+
+    ``target`` must pass :func:`check_target` (``kind``, ``force``, ``inputs``, ``label``),
+    checked before and again just before the swap; leftovers of killed writes beside it are
+    removed first (:func:`clean_leftovers`, reported to ``notice``). Raises FleetsimError for
+    a refused target and for any OS error while writing (a full disk, say), after removing
+    the temporary folder: the target is then exactly as it was.
+    """
+    label = label or str(target)
+    inputs = list(inputs)
+    where = check_target(target, kind, force, inputs, label)
+    clean_leftovers(where, notice)
+    tmp = _new_folder(where, kind, label)
     try:
         fill(tmp)
-        if target.exists():
-            old = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=parent))
-            os.replace(target, old / "previous")
-            os.replace(tmp, target)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.replace(tmp, target)
+        check_target(target, kind, force, inputs, label)  # it may have changed while we wrote
+        previous = _put_in_place(tmp, where)
+    except OSError as exc:
+        _remove(tmp)
+        raise FleetsimError(f"{label}: cannot write ({_reason(exc)}); nothing was changed") from None
     except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
+        _remove(tmp)
         raise
-    return target
+    if previous is not None:
+        _remove(previous)
+    return Path(target)
+
+
+def claim_study(
+    folder: str | Path, kind: str = "study", *, force: bool = False, inputs: Iterable[str | Path] = (),
+    label: str | None = None, notice: Callable[[str], None] | None = None,
+) -> Path:
+    """Make ``folder`` a study folder of ``kind`` (``sweep``, ``compare``, or ``study`` for either)
+    and return it as an absolute path.
+
+    A missing folder is created with the marker in one step, an empty one gets the marker, a
+    study folder of the same kind is kept as it is (resuming is not replacing), and with
+    ``force`` another fleetsim folder is swapped for a fresh one. Everything else is refused
+    as :func:`check_target` says. Raises FleetsimError.
+    """
+    label = label or str(folder)
+    where = check_target(folder, kind, force, inputs, label)
+    clean_leftovers(where, notice)
+    marker = read_marker(where) if where.is_dir() else None
+    if marker is not None and marker["kind"] in _RESUMES[kind]:
+        if marker["kind"] != kind and kind != "study":
+            atomic_text(where / MARKER, marker_text(kind))  # a folder the API started, now named
+        return where
+    if marker is None and where.is_dir():  # empty (check_target refuses anything else)
+        atomic_text(where / MARKER, marker_text(kind))
+        return where
+    tmp = _new_folder(where, kind, label)
+    try:
+        previous = _put_in_place(tmp, where)
+    except OSError as exc:
+        _remove(tmp)
+        raise FleetsimError(f"{label}: cannot create the study folder ({_reason(exc)})") from None
+    if previous is not None:
+        _remove(previous)
+    return where
+
+
+# ------------------------------------------------------------------------- names and paths
+
+_UNSAFE = re.compile(r"[^A-Za-z0-9._-]")
+SAFE_NAME_LENGTH = 100
+"""Longest file name :func:`safe_name` returns (before any extension)."""
+
+
+def safe_name(text: str, taken: set[str] | None = None, limit: int = SAFE_NAME_LENGTH) -> str:
+    """A file name for ``text`` made of ASCII letters, digits, ``-``, ``_`` and ``.`` only, not
+    starting with a dot or a dash, at most ``limit`` characters.
+
+    A name that had to change (or was too long) ends in ``-`` and 10 hex digits of its SHA-256,
+    so two names never end up alike by accident. With ``taken`` (lower-case names already
+    used in the folder) the result is also unique there, ignoring case, and is added to it.
+    """
+    slug = _UNSAFE.sub("_", text).lstrip(".-")
+    if not slug or slug != text or len(slug) > limit:
+        digest = hashlib.sha256(text.encode("utf-8", "surrogatepass")).hexdigest()[:10]
+        slug = f"{slug[: limit - 11]}-{digest}" if slug else digest
+    if taken is not None:
+        stem, n = slug, 2
+        while slug.casefold() in taken:
+            slug = f"{stem[: limit - 6]}-{n}"
+            n += 1
+        taken.add(slug.casefold())
+    return slug
+
+
+def inside(root: str | Path, path: str | Path) -> Path:
+    """Return ``path`` if, symbolic links resolved, it lies inside ``root``; else raise FleetsimError."""
+    base, full = Path(root).resolve(), Path(path).resolve()
+    if base not in full.parents:
+        raise FleetsimError(f"{path}: would be written outside {root}; refused")
+    return Path(path)
+
+
+# ------------------------------------------------------------------------------------- CSV
+
+_FORMULA_START = frozenset("=+-@\t\r")
+"""First characters a spreadsheet reads as the start of a formula (OWASP CSV injection, common practice)."""
+
+
+def escape_cell(value: Any) -> Any:
+    """``value`` with a ``'`` put in front if it is text a spreadsheet would take for a formula.
+
+    Text already starting with ``'`` gets one more, so :func:`unescape_cell` gives back the
+    exact original. Anything that is not text (a negative number, say) is returned as is.
+    """
+    if isinstance(value, str) and value[:1] and (value[0] in _FORMULA_START or value[0] == "'"):
+        return "'" + value
+    return value
+
+
+def unescape_cell(value: Any) -> Any:
+    """The inverse of :func:`escape_cell` for a text cell read back from a fleetsim CSV."""
+    if isinstance(value, str) and value.startswith("'"):
+        return value[1:]
+    return value
+
+
+def csv_frame(frame: pd.DataFrame) -> pd.DataFrame:
+    """A copy of ``frame`` whose text cells and column names are passed through :func:`escape_cell`."""
+    out = frame.copy()
+    for position in range(out.shape[1]):
+        column = out.iloc[:, position]
+        if isinstance(column.dtype, pd.CategoricalDtype):
+            if column.cat.categories.dtype == object:
+                out.isetitem(position, column.cat.rename_categories([escape_cell(c) for c in column.cat.categories]))
+        elif column.dtype == object or pd.api.types.is_string_dtype(column.dtype):
+            out.isetitem(position, column.map(escape_cell))
+    out.columns = [escape_cell(name) for name in out.columns]
+    return out
+
+
+def unescape_frame(frame: pd.DataFrame) -> pd.DataFrame:
+    """The inverse of :func:`csv_frame` for a table read back with pandas (text columns as str)."""
+    out = frame.copy()
+    for position in range(out.shape[1]):
+        if out.iloc[:, position].dtype == object:
+            out.isetitem(position, out.iloc[:, position].map(unescape_cell))
+    out.columns = [unescape_cell(name) for name in out.columns]
+    return out
+
+
+def write_csv(frame: pd.DataFrame, path: str | Path) -> None:
+    """Write ``frame`` (no index) as CSV with formula-like text escaped; every CSV fleetsim writes
+    goes through here. Parquet files keep the raw values."""
+    csv_frame(frame).to_csv(path, index=False)
+
+
+# ------------------------------------------------------------------------------------- files
 
 
 def atomic_text(path: Path, text: str) -> None:
     """Write ``text`` to ``path`` through a flushed temporary file beside it and ``os.replace``.
 
-    Raises FleetsimError if the folder cannot be written.
+    Raises FleetsimError if the folder cannot be written (the target is then unchanged).
     """
     path = Path(path)
     try:
@@ -103,35 +520,48 @@ def atomic_text(path: Path, text: str) -> None:
             stream.flush()
             os.fsync(stream.fileno())
         os.replace(tmp, path)
-    except BaseException:
+    except BaseException as exc:
         try:
             os.unlink(tmp)
         except OSError:
             pass
+        if isinstance(exc, OSError):
+            raise FleetsimError(f"{path}: cannot write ({_reason(exc)})") from None
         raise
 
 
 def atomic_save(path: Path, save: Callable[[Path], object]) -> None:
     """Let ``save(tmp_path)`` write a file (e.g. a plot or Parquet), then move it to ``path``.
 
-    The temporary file sits beside ``path``, so the move is an atomic rename.
+    The temporary file sits beside ``path``, so the move is an atomic rename. Raises
+    FleetsimError for an OS error (the target is then unchanged).
     """
     path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(f"{PARTIAL}{os.getpid()}.{path.name}")
     try:
+        path.parent.mkdir(parents=True, exist_ok=True)
         save(tmp)
         os.replace(tmp, path)
-    except BaseException:
+    except BaseException as exc:
         try:
             os.unlink(tmp)
         except OSError:
             pass
+        if isinstance(exc, OSError):
+            raise FleetsimError(f"{path}: cannot write ({_reason(exc)})") from None
         raise
 
 
-def write_run(result: Result, out: str | Path) -> Path:
-    """Write every output of ``result`` to the folder ``out`` (replaced whole)."""
+def write_run(
+    result: Result, out: str | Path, *, force: bool = False, inputs: Iterable[str | Path] = (),
+    label: str | None = None, notice: Callable[[str], None] | None = None,
+) -> Path:
+    """Write every output of ``result`` to the folder ``out``, all or nothing.
+
+    ``out`` may be new or empty; an earlier fleetsim output there is replaced only with
+    ``force``. ``inputs``, ``label`` and ``notice`` as for :func:`atomic_folder`. Raises
+    FleetsimError (see :func:`check_target`) with nothing touched.
+    """
 
     def fill(folder: Path) -> None:
         (folder / "summary.json").write_text(json.dumps(result.summary, indent=2) + "\n", encoding="utf-8")
@@ -143,10 +573,11 @@ def write_run(result: Result, out: str | Path) -> Path:
         result.census.to_parquet(folder / "census.parquet", index=False)
         tables = folder / "tables"
         tables.mkdir()
+        taken: set[str] = set()
         for name, table in result.tables.items():
-            table.to_csv(tables / f"{name}.csv", index=False)
+            write_csv(table, inside(folder, tables / f"{safe_name(name, taken)}.csv"))
 
-    return atomic_folder(Path(out), fill)
+    return atomic_folder(Path(out), fill, kind="run", force=force, inputs=inputs, label=label, notice=notice)
 
 
 def read_summary(run_dir: str | Path) -> dict:

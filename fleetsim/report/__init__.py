@@ -66,11 +66,19 @@ def write_report(run_dir: str | Path) -> tuple[Path, Path]:
     """Write ``report.html`` and ``report.md`` into the run folder; return their paths.
 
     Both are built in memory first and each is renamed into place from a temporary file, so
-    a failure never leaves a half-written report. Raises FleetsimError when ``run_dir`` is
-    not a readable run folder or the files cannot be written.
+    a failure never leaves a half-written report. Only a folder carrying the marker of a run
+    (:data:`fleetsim.output.MARKER`, written by ``fleetsim run``) is written to. Raises
+    FleetsimError when ``run_dir`` is not such a readable run folder or the files cannot be
+    written.
     """
-    page, markdown = render_report(run_dir)
+    from ..output import MARKER, read_marker
+
     folder = Path(run_dir)
+    marker = read_marker(folder) if folder.is_dir() else None
+    if folder.is_dir() and (marker is None or marker["kind"] != "run"):
+        raise FleetsimError(f"{run_dir}: not a run folder written by 'fleetsim run' (no {MARKER} file of "
+                            "kind run); nothing written")
+    page, markdown = render_report(run_dir)
     html_path, md_path = folder / "report.html", folder / "report.md"
     _write_both([(html_path, page), (md_path, markdown)])
     return html_path, md_path

@@ -1,7 +1,7 @@
 """Reading a run folder for the report: summary, configuration, event log and tables.
 
-The report reads only what :func:`fleetsim.output.write_run` wrote (DESIGN: reports read
-only the event log and tables). Every problem is a :class:`~fleetsim.errors.FleetsimError`
+The report reads only what :func:`fleetsim.output.write_run` wrote (reports read only the
+event log and tables). Every problem is a :class:`~fleetsim.errors.FleetsimError`
 whose one-line message names the file and what is wrong with it.
 """
 
@@ -15,7 +15,7 @@ from typing import Any
 import pandas as pd
 
 from ..errors import FleetsimError
-from ..output import read_summary
+from ..output import read_summary, unescape_frame
 
 __all__ = ["RunFolder", "read_run_folder"]
 
@@ -122,7 +122,7 @@ def _read_table(path: Path, columns: tuple[str, ...]) -> pd.DataFrame:
         # Only empty fields are missing values: pandas would otherwise read a name such as
         # "NA" or "null" as NaN.
         missing = {c: [""] for c in header if c not in _TEXT_COLUMNS}
-        table = pd.read_csv(path, dtype=text, keep_default_na=False, na_values=missing)
+        table = unescape_frame(pd.read_csv(path, dtype=text, keep_default_na=False, na_values=missing))
     except FileNotFoundError:
         raise FleetsimError(f"{path}: missing; is {path.parent.parent} a run folder?") from None
     except (OSError, ValueError, pd.errors.ParserError) as exc:

@@ -2,7 +2,9 @@
 
 Expected failures are FleetsimError, printed as ``error: ...`` lines with exit status 2.
 Ctrl-C stops a study with exit status 130; finished runs stay saved under ``--out``/cells
-and the same command resumes from them.
+and the same command resumes from them. ``--out`` is claimed before any run starts: a new or
+empty folder, or a study folder of the same kind (resumed); an earlier fleetsim output of
+another kind only with ``--force``; never a folder fleetsim did not write.
 """
 
 from __future__ import annotations
@@ -57,6 +59,19 @@ def _progress() -> Iterator[Callable[[int, int], None]]:
         yield update
 
 
+def _claim(out: Path, kind: str, force: bool, file: Path | None, stress: Path | None) -> None:
+    """Claim ``out`` as a study folder of ``kind`` before any run starts (refusals name --out)."""
+    from ..config import example_path
+    from ..output import claim_study
+
+    inputs = [file if file is not None else example_path(), *([stress] if stress is not None else [])]
+    claim_study(out, kind, force=force, inputs=inputs, label=f"--out {out}",
+                notice=lambda line: typer.echo(line, err=True))
+
+
+_FORCE_HELP = "Replace an earlier fleetsim output of another kind at --out (never a folder fleetsim did not write)."
+
+
 def _interrupted(out: Path | None) -> None:
     where = f"finished runs are saved in {out}/cells; run the same command again to resume" if out \
         else "nothing was saved (give --out to make a comparison resumable)"
@@ -97,6 +112,7 @@ def register(app: typer.Typer) -> None:
         heatmap: list[str] = typer.Option([], "--heatmap", help="Also draw a heat map of this metric "
                                           "(repeatable; 'all' draws every metric)."),
         plot_format: str = typer.Option("png", "--plot-format", help="png, svg or both."),
+        force: bool = typer.Option(False, "--force", help=_FORCE_HELP),
     ) -> None:
         """Run a grid of settings x seeds; write per-run and per-cell tables, the Pareto front,
         a recommendation and plots to --out."""
@@ -123,6 +139,7 @@ def register(app: typer.Typer) -> None:
             limits = [parse_limit(text) for text in limit]
             executor = make_executor(workers, cluster)
             base = _base(file, overrides, devices, days, stress)
+            _claim(out, "sweep", force, file, stress)
             with _progress() as update:
                 result = run_sweep(base, axes, range(first_seed, first_seed + seeds), objective, limits,
                                    executor=executor, folder=out, progress=update)
@@ -165,6 +182,7 @@ def register(app: typer.Typer) -> None:
         workers: int = typer.Option(2, "--workers", help="Local worker processes (1 runs in this process)."),
         cluster: str | None = typer.Option(None, "--cluster", help="Run on the Dask scheduler at this address."),
         every: bool = typer.Option(False, "--all", help="Print every metric, not only the headline ones."),
+        force: bool = typer.Option(False, "--force", help=_FORCE_HELP),
     ) -> None:
         """Run a baseline and a candidate under the same seeds; paired differences, intervals and
         a verdict per metric."""
@@ -178,6 +196,8 @@ def register(app: typer.Typer) -> None:
             wanted = [parse_detect(text) for text in detect]
             executor = make_executor(workers, cluster)
             base = _base(file, overrides, devices, days, None)
+            if out is not None:
+                _claim(out, "compare", force, file, stress)
             with _progress() as update:
                 result = run_compare(
                     base, Arm("baseline", tuple(baseline)), Arm("candidate", tuple(candidate)),

@@ -416,8 +416,15 @@ def comparison_record(result: ComparisonResult) -> dict[str, Any]:
 
 
 def write_compare(result: ComparisonResult, folder: str | Path) -> list[Path]:
-    """Write runs, differences, comparison.json and comparison.md into ``folder`` atomically."""
+    """Write runs, differences, comparison.json and comparison.md into ``folder``, each atomically.
+
+    Raises FleetsimError when ``folder`` is not empty and not a fleetsim comparison folder (see
+    :func:`fleetsim.output.claim_study`) or a file cannot be written.
+    """
+    from ..output import claim_study
+
     folder = Path(folder)
+    claim_study(folder, "compare")
     written = []
     for frame, stem in ((result.runs, "runs"), (result.differences, "differences")):
         written += save_frame(frame, folder / stem)

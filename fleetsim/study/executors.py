@@ -8,7 +8,10 @@ the seed, so every executor gives the same records, whatever the order they fini
   only be importable by this process.
 - :class:`LocalProcesses`: a ``concurrent.futures.ProcessPoolExecutor`` with ``workers``
   processes started with the ``spawn`` method (no inherited threads or state; each worker
-  imports fleetsim and the plug-ins afresh, with this process's ``sys.path``).
+  imports fleetsim and the plug-ins afresh, with this process's ``sys.path``). A worker
+  ends itself when this process dies, however it dies (even SIGKILL): on Linux the kernel
+  sends it SIGKILL (``prctl(PR_SET_PDEATHSIG)``), and everywhere a watch thread ends it
+  within about half a second of its parent process id changing.
 - :class:`DaskCluster`: a Dask ``distributed`` scheduler at ``address`` (``--cluster``);
   its workers need fleetsim, and any plug-in policy, installed.
 
@@ -18,8 +21,12 @@ result as it completes; on Ctrl-C the local executors end their own workers.
 
 from __future__ import annotations
 
+import ctypes
 import multiprocessing
+import os
 import signal
+import sys
+import threading
 import time
 from collections.abc import Callable, Sequence
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
@@ -124,7 +131,8 @@ class LocalProcesses:
             return
         context = multiprocessing.get_context("spawn")
         pool = ProcessPoolExecutor(
-            max_workers=min(self.workers, len(jobs)), mp_context=context, initializer=_ignore_interrupts
+            max_workers=min(self.workers, len(jobs)), mp_context=context, initializer=_start_worker,
+            initargs=(os.getpid(),),
         )
         finished = False
         try:
@@ -153,6 +161,47 @@ class LocalProcesses:
 def _ignore_interrupts() -> None:
     """In a worker: leave Ctrl-C to the study process, which ends its workers itself."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
+def _start_worker(parent: int) -> None:
+    """Initializer of a worker started by the process ``parent``: ignore Ctrl-C, die with the parent."""
+    _ignore_interrupts()
+    die_with_parent(parent)
+
+
+PARENT_POLL_S = 0.5
+"""How often (seconds) a worker's watch thread checks that its parent process still lives."""
+
+
+def die_with_parent(parent: int, use_prctl: bool = True) -> None:
+    """End this process as soon as the process ``parent`` (its parent when called) is gone.
+
+    On Linux (``use_prctl``) the kernel is asked to send SIGKILL when the parent dies
+    (``prctl(PR_SET_PDEATHSIG)``, through ctypes); in addition, and on every system, a daemon
+    thread checks every :data:`PARENT_POLL_S` seconds whether ``os.getppid()`` is still
+    ``parent`` (an orphan is handed to another process) and calls ``os._exit(1)`` if not.
+    The kernel ties the signal to the parent *thread* that started the worker: LocalProcesses
+    starts its workers from the thread running the study, which outlives the pool.
+    """
+    if use_prctl and sys.platform.startswith("linux"):
+        try:
+            pr_set_pdeathsig = 1  # from <linux/prctl.h>
+            ctypes.CDLL(None, use_errno=True).prctl(
+                ctypes.c_int(pr_set_pdeathsig), ctypes.c_ulong(signal.SIGKILL),
+                ctypes.c_ulong(0), ctypes.c_ulong(0), ctypes.c_ulong(0),
+            )
+        except (OSError, AttributeError):
+            pass  # the watch thread below still ends the worker
+    if os.getppid() != parent:  # the parent died before the request took effect
+        os._exit(1)
+    threading.Thread(target=_watch_parent, args=(parent,), name="fleetsim-parent-watch", daemon=True).start()
+
+
+def _watch_parent(parent: int) -> None:
+    while True:
+        time.sleep(PARENT_POLL_S)
+        if os.getppid() != parent:
+            os._exit(1)  # no cleanup: the parent saves finished runs itself, runs in flight are lost anyway
 
 
 def _stop_pool(pool: ProcessPoolExecutor) -> None:

@@ -7,7 +7,9 @@ older engine's. Its record is written to
 ``<folder>/<key>.json`` through a temporary file in the same folder that replaces the target
 with ``os.replace`` only once it is complete and flushed, so a killed study leaves either a
 whole record or none. Leftover temporary files (``.partial-*``) are removed when a store is
-opened. One study at a time should write to a folder.
+opened. The store lives in a study folder (``<study>/cells``): opening it claims that folder
+for fleetsim (:func:`fleetsim.output.claim_study`), so a store never lands in a folder of
+someone else's. One study at a time should write to a folder.
 """
 
 from __future__ import annotations
@@ -22,7 +24,7 @@ from .. import __version__
 from ..config import Config
 from ..errors import FleetsimError
 from ..output import PARTIAL as _PARTIAL
-from ..output import atomic_save, atomic_text
+from ..output import atomic_save, atomic_text, claim_study
 
 __all__ = ["run_key", "engine_fingerprint", "RunStore", "atomic_text", "atomic_save", "RECORD_FORMAT"]
 
@@ -58,15 +60,17 @@ def run_key(config: Config, seed: int) -> str:
 
 
 class RunStore:
-    """The folder of finished run records of one study (created when missing).
+    """The folder of finished run records of one study (created when missing), ``<study>/cells``.
 
-    Raises FleetsimError if ``folder`` exists as a file or cannot be created.
+    Raises FleetsimError if ``folder`` exists as a file or cannot be created, or if the study
+    folder holding it is not empty and not a fleetsim study folder.
     """
 
     def __init__(self, folder: str | Path):
         self.folder = Path(folder)
         if self.folder.exists() and not self.folder.is_dir():
             raise FleetsimError(f"{self.folder}: exists and is not a folder")
+        claim_study(self.folder.parent, "study")
         try:
             self.folder.mkdir(parents=True, exist_ok=True)
         except OSError as exc:

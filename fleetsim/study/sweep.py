@@ -10,7 +10,9 @@ Outputs of :func:`write_sweep` in the study folder::
     study.json            the design, the front, the recommendation and the caution
     study.md              the text the command prints
     frontier.png          throughput against waste, coloured by worst representation
-    heatmaps/*.png        each chosen metric over the two first varied keys
+    heatmaps/*.png        each chosen metric over the two first varied keys (file names are
+                          safe slugs of the metric names, see fleetsim.output.safe_name)
+    .fleetsim-output      the marker of a fleetsim study folder (kind sweep)
 """
 
 from __future__ import annotations
@@ -31,6 +33,7 @@ from scipy import stats
 from .. import __version__
 from ..config import Config, config_hash
 from ..errors import ConfigError
+from ..output import claim_study, inside, safe_name, write_csv
 from .executors import Executor, InProcess, Job
 from .pareto import pareto_front
 from .recommend import Limit, Objective, Recommendation, recommend
@@ -341,10 +344,11 @@ def default_heatmaps(result: SweepResult) -> list[str]:
 
 
 def save_frame(frame: pd.DataFrame, stem: Path) -> list[Path]:
-    """Write ``frame`` as ``stem.parquet`` and ``stem.csv``, each atomically; return both paths."""
+    """Write ``frame`` as ``stem.parquet`` (raw values) and ``stem.csv`` (formula-like text escaped,
+    :func:`fleetsim.output.write_csv`), each atomically; return both paths."""
     parquet, csv = stem.with_name(stem.name + ".parquet"), stem.with_name(stem.name + ".csv")
     atomic_save(parquet, partial(frame.to_parquet, index=False))
-    atomic_save(csv, partial(frame.to_csv, index=False))
+    atomic_save(csv, partial(write_csv, frame))
     return [parquet, csv]
 
 
@@ -358,7 +362,9 @@ def write_sweep(
 
     ``heatmaps``: metric names to draw (short names allowed; ``["all"]`` draws every metric);
     None draws :func:`default_heatmaps`. ``plot_format``: ``png``, ``svg`` or ``both``.
-    Returns the paths written. Raises ConfigError for an unknown heat-map metric or format.
+    Returns the paths written. Raises ConfigError for an unknown heat-map metric or format,
+    FleetsimError when ``folder`` is not empty and not a fleetsim sweep folder (see
+    :func:`fleetsim.output.claim_study`) or a file cannot be written.
     """
     from .plots import frontier_plot, heat_map
 
@@ -378,10 +384,11 @@ def write_sweep(
             if metric not in chosen:
                 chosen.append(metric)
     result.heatmap_metrics = chosen
+    claim_study(folder, "sweep")
     written: list[Path] = []
 
     def save_table(frame: pd.DataFrame, stem: str) -> None:
-        written.extend(save_frame(frame, folder / stem))
+        written.extend(save_frame(frame, inside(folder, folder / stem)))
 
     save_table(result.runs, "runs")
     save_table(result.cell_means, "cell_means")
@@ -398,7 +405,7 @@ def write_sweep(
         front_table[f"{name}:high"] = front_table["cell"].map(rows["high"])
     front_table["on_front"] = result.cells["on_front"].to_numpy()
     front_table["meets_limits"] = result.cells["meets_limits"].to_numpy()
-    atomic_save(folder / "front.csv", partial(front_table.to_csv, index=False))
+    atomic_save(folder / "front.csv", partial(write_csv, front_table))
     written.append(folder / "front.csv")
 
     record = study_record(result)
@@ -406,12 +413,14 @@ def write_sweep(
     atomic_text(folder / "study.md", render_sweep(result) + "\n")
     written.extend([folder / "study.json", folder / "study.md"])
 
+    taken: set[str] = set()
+    stems = {metric: safe_name(metric, taken) for metric in chosen}  # metric names hold device type names
     for extension in formats:
         path = folder / f"frontier.{extension}"
         atomic_save(path, partial(frontier_plot, result, fmt=extension))
         written.append(path)
         for metric in chosen:
-            path = folder / "heatmaps" / f"{metric}.{extension}"
+            path = inside(folder, folder / "heatmaps" / f"{stems[metric]}.{extension}")
             atomic_save(path, partial(heat_map, result, metric, fmt=extension))
             written.append(path)
     return written
