@@ -1,6 +1,6 @@
 """A small, literal reference simulator of fleetsim's semantics: the oracle for the engine.
 
-It is written plainly from the semantics in DESIGN.md and the docstrings of the engine's
+It is written plainly from the semantics in docs/architecture.md and the docstrings of the engine's
 modules, and shares none of the engine's signal, runtime, server or client code (it reuses
 only :mod:`fleetsim.config` for parsing and :func:`fleetsim.fleet.sample_fleet` for the
 devices' static traits, so that engine and oracle see the same fleet for a seed).

@@ -100,7 +100,7 @@ def test_round_success_follows_the_binomial_tail(binomial_run):
 
 def test_reports_per_round_follow_the_capped_binomial(binomial_run):
     # Reports R = min(S, target) with S ~ Bin(n, p) survivors: the round closes at the
-    # target-th report (DESIGN.md) and each device survives its task with p = exp(-h T).
+    # target-th report (docs/architecture.md) and each device survives its task with p = exp(-h T).
     n = binomial_run.config.rounds.accept_count
     target = binomial_run.config.rounds.target_reports
     p_device = math.exp(-CRASH_PER_HOUR / 3600.0 * FIXED_TASK_S)
