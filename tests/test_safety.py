@@ -26,7 +26,7 @@ import yaml
 from typer.testing import CliRunner
 
 import fleetsim
-from fleetsim.cli import app
+from fleetsim.cli.app import app
 from fleetsim.config import example_path
 from fleetsim.errors import FleetsimError
 from fleetsim.output import (
@@ -208,7 +208,7 @@ def test_leftovers_are_removed_only_when_ours_and_older_than_this_process(tmp_pa
 
 
 def test_without_an_atomic_swap_the_old_output_is_moved_aside_and_put_back(tmp_path, monkeypatch):
-    import fleetsim.output as output
+    import fleetsim.output.folders as output
 
     monkeypatch.setattr(output, "_exchange", lambda a, b: False)  # as on a system without renameat2
     target = tmp_path / "run"
@@ -496,14 +496,6 @@ def _alive(pid: int) -> bool:
     return state not in ("Z", "X")  # a zombie has ended; only its exit status is left
 
 
-def _threads(pid: int) -> int:
-    try:
-        text = Path(f"/proc/{pid}/status").read_text()
-    except OSError:
-        return 0
-    return int(next(line.split()[1] for line in text.splitlines() if line.startswith("Threads:")))
-
-
 def _wait_until_gone(pids: list[int], within_s: float) -> list[int]:
     deadline = time.monotonic() + within_s
     while time.monotonic() < deadline and any(_alive(p) for p in pids):
@@ -512,6 +504,7 @@ def _wait_until_gone(pids: list[int], within_s: float) -> list[int]:
 
 
 SLOW_POLICY = """
+import os
 import time
 
 import numpy as np
@@ -527,6 +520,11 @@ class Slow(SelectionPolicy):
     window_s = 30.0
 
     def choose(self, candidates, round, rng):
+        # Each worker leaves its pid once it is inside a run (its start-up, death watch
+        # included, is over), so the test kills the parent only then.
+        marks = os.environ.get("SLOW_POLICY_MARKS")
+        if marks:
+            open(os.path.join(marks, str(os.getpid())), "w").close()
         time.sleep(1.0)
         return np.arange(min(round.needed, len(candidates.device_type)))
 """
@@ -544,18 +542,22 @@ def test_workers_die_when_the_sweep_is_killed(tmp_path):
     args = ["sweep", *STUDY, "--set", "selection.policy=slow_policy:Slow", "--vary", "rounds.over_selection=1.1,1.3",
             "--seeds", "1", "--workers", "2", "--out", str(tmp_path / "s")]
     log = tmp_path / "stderr.txt"
+    marks = tmp_path / "marks"
+    marks.mkdir()
+    env = {**_env_with(tmp_path), "SLOW_POLICY_MARKS": str(marks)}
     with log.open("wb") as stderr:
-        parent = subprocess.Popen(_cli(*args), stdout=subprocess.DEVNULL, stderr=stderr, env=_env_with(tmp_path))
+        parent = subprocess.Popen(_cli(*args), stdout=subprocess.DEVNULL, stderr=stderr, env=env)
     workers: list[int] = []
     try:
-        deadline = time.monotonic() + 60
+        # A worker still importing when its parent dies ends only once its start-up runs the
+        # death watch; the claim tested here is about workers inside runs.
+        deadline = time.monotonic() + 120
         while time.monotonic() < deadline and parent.poll() is None:
             workers = [p for p in _children(parent.pid) if b"spawn_main" in Path(f"/proc/{p}/cmdline").read_bytes()]
-            if len(workers) == 2 and all(_threads(p) >= 2 for p in workers):  # initialised: watch thread up
+            if len(workers) == 2 and {str(p) for p in workers} <= {m.name for m in marks.iterdir()}:
                 break
             time.sleep(0.05)
         assert parent.poll() is None and len(workers) == 2, log.read_text()
-        time.sleep(1.0)  # inside a run now
     finally:
         parent.send_signal(signal.SIGKILL)
         parent.wait()
