@@ -28,7 +28,8 @@ class Fleet:
     """Every device's static traits; index ``i`` is device ``i`` in every array.
 
     Units are in the names: seconds (``_s``), bytes, watts (``_w``), watt-hours (``_wh``),
-    Mbit/s (``_mbps``).
+    Mbit/s (``_mbps``). The fleet file gives bit rates in bit/s (``download_rate``,
+    ``upload_rate``): :func:`sample_fleet` converts them.
     """
 
     type_names: tuple[str, ...]
@@ -72,10 +73,20 @@ class Fleet:
         )
 
 
-def _draw(rng: np.random.Generator, trait: Trait, size: int) -> np.ndarray:
+# Fleet arrays hold bit rates in Mbit/s; the fleet file in bit/s.
+_BIT_PER_S_PER_MBPS = 1e6
+
+
+def _draw(rng: np.random.Generator, trait: Trait, size: int, per_unit: float = 1.0) -> np.ndarray:
+    """``size`` lognormal draws of ``trait``, in units of ``per_unit`` of the trait's unit.
+
+    The median is divided before drawing (exact for whole numbers of Mbit/s), so a draw is
+    the same float it was when the file gave the median in the array's unit.
+    """
+    median = trait.median / per_unit
     if trait.spread == 0:
-        return np.full(size, trait.median)
-    return trait.median * np.exp(trait.spread * rng.standard_normal(size))
+        return np.full(size, median)
+    return median * np.exp(trait.spread * rng.standard_normal(size))
 
 
 def sample_fleet(config: Config, seed: int) -> Fleet:
@@ -98,20 +109,20 @@ def sample_fleet(config: Config, seed: int) -> Fleet:
     for index, kind in enumerate(spec.device_types.values()):
         members = np.flatnonzero(device_type == index)
         count = members.size
-        traits = {
-            "sample_cost_s": kind.sample_cost,
-            "memory_bytes": kind.memory,
-            "battery_wh": kind.battery_wh,
-            "train_power_w": kind.train_power_w,
-            "down_mbps": kind.down_mbps,
-            "up_mbps": kind.up_mbps,
-            "samples": kind.samples,
+        traits = {  # array -> (trait, its unit per array unit)
+            "sample_cost_s": (kind.sample_cost, 1.0),
+            "memory_bytes": (kind.memory, 1.0),
+            "battery_wh": (kind.battery_capacity, 1.0),
+            "train_power_w": (kind.train_power, 1.0),
+            "down_mbps": (kind.download_rate, _BIT_PER_S_PER_MBPS),
+            "up_mbps": (kind.upload_rate, _BIT_PER_S_PER_MBPS),
+            "samples": (kind.samples, 1.0),
         }
         # Draw in a fixed order so each trait's stream position depends only on the fleet spec.
-        for key, trait in traits.items():
-            columns[key][members] = _draw(rng, trait, count)
-        columns["radio_power_w"][members] = kind.radio_power_w
-        columns["charge_power_w"][members] = kind.charge_power_w
+        for key, (trait, per_unit) in traits.items():
+            columns[key][members] = _draw(rng, trait, count, per_unit)
+        columns["radio_power_w"][members] = kind.radio_power
+        columns["charge_power_w"][members] = kind.charge_power
     phase = rng.uniform(0.0, config.rounds.checkin_every, size=n)
     return Fleet(
         type_names=type_names,

@@ -31,7 +31,15 @@ from typer.testing import CliRunner
 
 from fleetsim import SelectionPolicy
 from fleetsim.cli import app
-from fleetsim.config import MAX_DEPTH, MAX_NODES, check_memory, example_path, load_config, read_yaml
+from fleetsim.config import (
+    MAX_DEPTH,
+    MAX_NODES,
+    RENAMED_KEYS,
+    check_memory,
+    example_path,
+    load_config,
+    read_yaml,
+)
 from fleetsim.errors import ConfigError
 from fleetsim.policies import make_policy
 
@@ -121,17 +129,22 @@ SHIFTED = with_value(("disruptions",), [
 
 NUMBERS = [
     ("fleet", "devices"), ("fleet", "device_types", "tablet", "share"),
-    ("fleet", "device_types", "budget-phone", "battery_wh", "median"),
-    ("fleet", "device_types", "tablet", "battery_wh", "spread"), ("fleet", "device_types", "tablet", "radio_power_w"),
-    ("fleet", "device_types", "tablet", "charge_power_w"),
+    ("fleet", "device_types", "tablet", "battery_capacity", "spread"),
     ("fleet", "device_types", "midrange-phone", "samples", "median"),
-    ("fleet", "device_types", "tablet", "up_mbps", "median"),
-    ("fleet", "device_types", "tablet", "battery_level", "charging", "mean"),
-    ("fleet", "device_types", "tablet", "battery_level", "unplugged", "sd"),
     ("fleet", "device_types", "tablet", "signals", "idle", "hourly", 3), ("fleet", "regions", "east-asia", "share"),
     ("workload", "update_compression"), ("workload", "epochs"), ("workload", "batch_size"),
-    ("workload", "min_battery"), ("workload", "crash_per_hour"), ("rounds", "target_reports"),
-    ("rounds", "over_selection"), ("rounds", "min_reports"),
+    ("rounds", "target_reports"), ("rounds", "over_selection"), ("rounds", "min_reports"),
+]
+# Quantities written with a unit (energy, power, bit rate, percentage, hazard).
+QUANTITIES = [
+    ("fleet", "device_types", "budget-phone", "battery_capacity", "median"),
+    ("fleet", "device_types", "tablet", "train_power", "median"), ("fleet", "device_types", "tablet", "radio_power"),
+    ("fleet", "device_types", "tablet", "charge_power"),
+    ("fleet", "device_types", "tablet", "upload_rate", "median"), ("fleet", "device_types", "flagship-phone",
+                                                                   "download_rate"),
+    ("fleet", "device_types", "tablet", "battery_level", "charging", "mean"),
+    ("fleet", "device_types", "tablet", "battery_level", "unplugged", "sd"),
+    ("workload", "min_battery"), ("workload", "crash_rate"),
 ]
 DURATIONS = [
     ("horizon", "duration"), ("horizon", "warmup"), ("rounds", "selection_timeout"), ("rounds", "report_deadline"),
@@ -143,7 +156,7 @@ SIZES = [("workload", "model_size"), ("workload", "memory_needed"), ("workload",
          ("fleet", "device_types", "tablet", "memory", "median")]
 DISRUPTION = [("disruptions", 0, "factor"), ("disruptions", 0, "shift_hours"), ("disruptions", 0, "start")]
 OPTIONAL = {("horizon", "warmup"), ("rounds", "min_reports"), ("workload", "update_size")}
-ALL_LEAVES = NUMBERS + DURATIONS + SIZES + DISRUPTION
+ALL_LEAVES = NUMBERS + QUANTITIES + DURATIONS + SIZES + DISRUPTION
 
 
 def base_for(path: tuple[Any, ...]) -> dict[str, Any]:
@@ -165,6 +178,49 @@ def test_wrong_types_are_refused_at_their_key(path, value):
         value = "none at all"
     got = not isinstance(value, (list, dict))
     refused(dump(with_value(path, value, base_for(path))), path=key(path), got=got)
+
+
+# One written form per kind of quantity; each is a wrong unit for every other kind.
+KIND_OF = {"battery_capacity": "energy", "train_power": "power", "radio_power": "power", "charge_power": "power",
+           "upload_rate": "bit rate", "download_rate": "bit rate", "mean": "percentage", "sd": "percentage",
+           "min_battery": "percentage", "crash_rate": "hazard"}
+WRITTEN = {"energy": "14Wh", "power": "3W", "bit rate": "14Mbit/s", "percentage": "30%", "hazard": "0.05/h"}
+WRONG_UNITS = {
+    "energy": ["14J", "3000mAh", "14wh", "14 Wh/s", "14kwh"],
+    "power": ["800mA", "3.2Wh", "3.2w", "3.2 kw", "3.2VA"],
+    "bit rate": ["14MB/s", "14Mbps", "14Mb/s", "500Kbit/s", "2MiB/s", "14 Mbit", "14bps"],
+    "percentage": ["130%", "30 percent", "0.3%%", "101", "30pct"],
+    "hazard": ["0.05 per hour", "0.05h", "0.05/hour", "0.05/y", "5%/h", "/h"],
+}
+
+
+@examples(105)
+@given(path=st.sampled_from(QUANTITIES), kind=st.sampled_from(sorted(WRONG_UNITS)), pick=st.integers(0, 6))
+def test_quantities_with_a_wrong_unit_are_refused(path, kind, pick):
+    own = KIND_OF[path[-2] if path[-1] == "median" else path[-1]]
+    spelling = WRONG_UNITS[own][pick % len(WRONG_UNITS[own])] if kind == own else WRITTEN[kind]
+    refused(dump(with_value(path, spelling)), path=key(path), fragment=f"expected a {own}".replace("a e", "an e"))
+
+
+RENAMED = {("fleet", "device_types", "tablet", old): new for old, (new, _) in RENAMED_KEYS["DeviceType"].items()}
+RENAMED |= {("workload", old): new for old, (new, _) in RENAMED_KEYS["Workload"].items()}
+
+
+@examples(90)
+@given(old=st.sampled_from(sorted(RENAMED)), how=st.sampled_from(["file", "set", "set-median"]),
+       value=st.sampled_from(["40", "0.05", "14Wh", "{median: 14, spread: 0.1}"]))
+def test_renamed_keys_are_refused_naming_the_new_one(old, how, value):
+    new = RENAMED[old]
+    where = key(old)
+    if how == "file":
+        data = copy.deepcopy(BASE)
+        parent = data[old[0]] if len(old) == 2 else data["fleet"]["device_types"]["tablet"]
+        parent[old[-1]] = parent.pop(new, None) if value == "40" else yaml.safe_load(value)
+        lines = refused(dump(data), path=where, got=False, fragment=f"renamed to {new}")
+    else:
+        option = f"{where}.median={value}" if how == "set-median" else f"{where}={value}"
+        lines = refused(None, ["--set", option], path=where, got=False, fragment=f"renamed to {new}")
+    assert all("unknown key" not in line for line in lines), lines
 
 
 NON_FINITE = [".inf", "-.inf", ".nan", ".NaN", "+.INF", "1.0e+999", "-1.0e+999", '"inf"', '"nan"', '"-Infinity"',
@@ -546,7 +602,8 @@ def test_tiny_window_would_stall_the_selection():
 
 def test_non_finite_values_that_used_to_pass(tmp_path):
     for old, new, where in [("over_selection: 1.3", "over_selection: .inf", "rounds.over_selection"),
-                            ("battery_wh: {median: 14,", "battery_wh: {median: .inf,", "battery_wh.median")]:
+                            ("battery_capacity: {median: 14Wh,", "battery_capacity: {median: .inf,",
+                             "battery_capacity.median")]:
         assert where in only_problem(write(tmp_path, BASE_TEXT.replace(old, new)))
     shifted = BASE_TEXT + "\ndisruptions:\n  - {kind: behaviour-shift, signal: idle, start: 1h, duration: 1h, " \
                           "shift_hours: .nan}\n"

@@ -1,5 +1,6 @@
 """Validation of fleet files: every problem is one line naming file, key path, value, expectation."""
 
+import json
 import math
 
 import pytest
@@ -135,8 +136,10 @@ def test_names_with_control_characters_are_refused(raw):
         ("rounds.over_selection=.inf", "rounds.over_selection", "finite number"),
         ("disruptions=[{kind: behaviour-shift, signal: idle, start: 1h, duration: 1h, shift_hours: .nan}]",
          "disruptions.0.shift_hours", "finite number"),
-        ("fleet.device_types.tablet.battery_wh.median=.inf", "fleet.device_types.tablet.battery_wh.median", "finite"),
-        ("fleet.device_types.tablet.battery_wh=.inf", "fleet.device_types.tablet.battery_wh", "finite number"),
+        ("fleet.device_types.tablet.battery_capacity.median=.inf", "fleet.device_types.tablet.battery_capacity.median",
+         "finite"),
+        ("fleet.device_types.tablet.battery_capacity=.inf", "fleet.device_types.tablet.battery_capacity",
+         "finite energy"),
         ("selection.params.window=.nan", "selection.params.window", "finite number"),
         ("workload.epochs=yes", "workload.epochs", "not a boolean"),
         ("fleet.device_types.tablet.signals.idle.hourly.0=true", "fleet.device_types.tablet.signals.idle.hourly.0",
@@ -187,3 +190,126 @@ def test_memory_estimate_is_above_a_measured_run_and_grows_with_the_drivers():
     faster = estimate_memory(load_config(example_path(), ["rounds.checkin_every=1s"]), 30.0)
     # ticks: devices x (window / check-in period + 1)
     assert faster["ticks"] == pytest.approx(small["ticks"] * (30 + 1) / (30 / 600 + 1))
+
+
+# ------------------------------------------------------------------ quantities with units
+
+RENAMES = [  # old key path -> new key, as docs/fleet-file.md lists them
+    ("fleet.device_types.tablet.battery_wh", "battery_capacity"),
+    ("fleet.device_types.tablet.train_power_w", "train_power"),
+    ("fleet.device_types.tablet.radio_power_w", "radio_power"),
+    ("fleet.device_types.tablet.charge_power_w", "charge_power"),
+    ("fleet.device_types.tablet.down_mbps", "download_rate"),
+    ("fleet.device_types.tablet.up_mbps", "upload_rate"),
+    ("workload.crash_per_hour", "crash_rate"),
+]
+
+
+@pytest.mark.parametrize(("old", "new"), RENAMES)
+def test_each_old_key_in_a_file_is_refused_naming_the_new_one(tmp_path, old, new):
+    text = example_path().read_text()
+    *_, leaf = old.split(".")
+    indent = "  " if old.startswith("workload") else "      "
+    path = tmp_path / "f.yaml"
+    # The tablet (the last device type) or the workload gets the old key beside its new one.
+    anchor = "  requires:" if old.startswith("workload") else "      samples: {median: 180, spread: 1.9}"
+    path.write_text(text.replace(anchor, f"{indent}{leaf}: 40\n{anchor}"))
+    with pytest.raises(ConfigError) as info:
+        load_config(path)
+    (line,) = info.value.problems
+    assert line.startswith(f"{path}: {old}: renamed to {new}, ") and line.endswith("(got 40)"), line
+
+
+@pytest.mark.parametrize(("old", "new"), RENAMES)
+def test_each_old_key_in_an_override_is_refused_naming_the_new_one(raw, old, new):
+    (line,) = problems(raw, [f"{old}=40"])
+    assert line.startswith(f"fleet.yaml: {old}: renamed to {new}, ") and line.endswith("(got 40)"), line
+
+
+def test_every_renamed_key_of_a_mapping_gets_its_own_line_and_the_message_says_how_to_write_it(raw):
+    old_style = {"share": 1.0, "battery_wh": 14, "down_mbps": {"median": 40, "spread": 0.7}}
+    raw["fleet"]["device_types"] = {"tablet": {**raw["fleet"]["device_types"]["tablet"], **old_style}}
+    lines = problems(raw)
+    assert lines == [
+        "fleet.yaml: fleet.device_types.tablet.battery_wh: renamed to battery_capacity, an energy such as 14Wh "
+        "(got 14)",
+        "fleet.yaml: fleet.device_types.tablet.down_mbps: renamed to download_rate, a bit rate such as 40Mbit/s; "
+        "a bare number is bit/s",
+    ]
+
+
+# The example fleet as it was written before units were spelt out (bare numbers in Wh, W,
+# Mbit/s, per hour and percent): per device type battery_wh, train_power_w, radio_power_w,
+# charge_power_w, down_mbps, up_mbps.
+OLD_EXAMPLE = {
+    "budget-phone": (14, 3.2, 0.8, 10, 14, 4),
+    "midrange-phone": (17, 3.6, 1.0, 18, 32, 9),
+    "flagship-phone": (19, 4.5, 1.1, 27, 70, 18),
+    "tablet": (30, 4.0, 1.0, 20, 40, 10),
+}
+
+
+def test_the_example_with_units_is_the_same_configuration_as_before():
+    new = load_config(example_path())
+    raw = yaml.safe_load(example_path().read_text())
+    for name, (wh, train_w, radio_w, charge_w, down, up) in OLD_EXAMPLE.items():
+        kind = raw["fleet"]["device_types"][name]
+        kind["battery_capacity"]["median"] = wh
+        kind["train_power"]["median"] = train_w
+        kind["radio_power"], kind["charge_power"] = radio_w, charge_w
+        kind["download_rate"]["median"] = down * 10**6  # 1 Mbit/s = 10^6 bit/s (SI prefix M)
+        kind["upload_rate"]["median"] = up * 10**6
+        kind["battery_level"] = {"charging": {"mean": 72, "sd": 20}, "unplugged": {"mean": 52, "sd": 24}}
+    raw["workload"]["min_battery"], raw["workload"]["crash_rate"] = 30, 0.05
+    bare = build_config(raw)
+    assert bare.model_dump() == new.model_dump()
+    assert config_hash(bare) == config_hash(new)
+
+
+def test_fleet_arrays_keep_mbit_per_s_and_watt_hours_exactly(raw):
+    from fleetsim.fleet import sample_fleet
+
+    config = build_config(raw, overrides=["fleet.device_types.tablet.download_rate=1.2Gbit/s",
+                                          "fleet.device_types.tablet.upload_rate=500kbit/s",
+                                          "fleet.device_types.tablet.battery_capacity=0.5kWh",
+                                          "fleet.device_types.tablet.train_power=800mW",
+                                          "fleet.devices=400"])
+    fleet = sample_fleet(config, seed=1)
+    tablets = fleet.device_type == fleet.type_names.index("tablet")
+    assert tablets.any()
+    assert set(fleet.down_mbps[tablets]) == {1200.0} and set(fleet.up_mbps[tablets]) == {0.5}
+    assert set(fleet.battery_wh[tablets]) == {500.0} and set(fleet.train_power_w[tablets]) == {0.8}
+
+
+def test_written_quantities_validate_with_their_unit(raw):
+    config = build_config(raw, overrides=["workload.min_battery=45%", "workload.crash_rate=1.2/d",
+                                          "fleet.device_types.tablet.battery_level.charging={mean: 60%, sd: 15%}",
+                                          "fleet.device_types.tablet.charge_power=18W"])
+    assert config.workload.min_battery == 45.0
+    assert config.workload.crash_rate == pytest.approx(0.05)  # 1.2 per day = 0.05 per hour
+    assert config.fleet.device_types["tablet"].battery_level.charging.mean == 60.0
+    assert config.fleet.device_types["tablet"].charge_power == 18.0
+    (line,) = problems(raw, ["fleet.device_types.tablet.download_rate.median=40MB/s"])
+    assert line.startswith("fleet.yaml: fleet.device_types.tablet.download_rate.median: expected a bit rate")
+    assert "byte rate" in line and "(got '40MB/s')" in line
+
+
+def test_schema_shows_the_new_keys_with_examples():
+    defs = config_schema()["$defs"]
+    kind = defs["DeviceType"]["properties"]
+    for name in ("battery_capacity", "train_power", "radio_power", "charge_power", "download_rate", "upload_rate"):
+        assert name in kind
+    assert kind["download_rate"]["examples"] == [{"median": "14Mbit/s", "spread": 0.9}]
+    assert "14Wh" in defs["EnergyTrait"]["properties"]["median"]["examples"]
+    work = defs["Workload"]["properties"]
+    assert "crash_rate" in work and "crash_per_hour" not in work
+    assert "0.05/h" in work["crash_rate"]["examples"] and "30%" in work["min_battery"]["examples"]
+
+
+@pytest.mark.parametrize("limit", ["10m", "null"])
+def test_a_written_configuration_reads_back_as_it_was(limit):
+    # config.json is the run's typed settings: no OS limit is written as null, never Infinity
+    # (JSON has no infinity, RFC 8259 section 6).
+    config = load_config(example_path(), [f"workload.execution_limit={limit}"])
+    text = json.dumps(config.model_dump(mode="json"), allow_nan=False)
+    assert build_config(json.loads(text)) == config

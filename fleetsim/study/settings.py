@@ -20,7 +20,7 @@ import yaml
 from ..config import Config, build_config, check_memory, load_config, load_yaml_text, read_yaml
 from ..errors import ConfigError
 from ..policies import make_policy
-from ..units import parse_duration, parse_size
+from ..units import parse_bit_rate, parse_duration, parse_energy, parse_hazard, parse_percent, parse_power, parse_size
 
 __all__ = [
     "FleetFile",
@@ -182,9 +182,15 @@ def _split_values(text: str) -> list[str]:
     return items
 
 
+# The written forms a range may use, each giving the base unit a bare number means in the file.
+_RANGE_PARSERS = (float, parse_duration, parse_size, parse_energy, parse_power, parse_bit_rate, parse_percent,
+                  parse_hazard)
+
+
 def _range_parts(parts: list[str]) -> list[float] | None:
-    """Read start, stop, step as plain numbers, durations or sizes (all three alike)."""
-    for parser in (float, parse_duration, parse_size):
+    """Read start, stop, step as plain numbers or as quantities of one kind (all three alike):
+    durations, sizes, energy, power, bit rates, percentages or hazards, in base units."""
+    for parser in _RANGE_PARSERS:
         try:
             numbers = [float(parser(p)) for p in parts]  # type: ignore[operator]
         except (ValueError, OverflowError):
@@ -199,7 +205,9 @@ def parse_axis(text: str) -> Axis:
 
     List values are read as YAML scalars (``1.3``, ``lottery``, ``6m``). A range includes
     ``stop`` when it falls on the grid; its parts may be numbers, durations (``2m:10m:2m``,
-    giving seconds) or sizes (``10MB:40MB:10MB``, giving bytes); whole numbers stay integers.
+    giving seconds), sizes (``10MB:40MB:10MB``, giving bytes) or other quantities with a unit
+    (``10Mbit/s:40Mbit/s:10Mbit/s`` giving bit/s, ``20%:40%:10%``, ``0.05/h:0.2/h:0.05/h``);
+    whole numbers stay integers.
     Raises ConfigError for a malformed option, an empty or repeated value, a zero or
     wrong-signed step, or more than MAX_AXIS_VALUES values.
     """
@@ -209,7 +217,8 @@ def parse_axis(text: str) -> Axis:
     if len(parts) == 3 and "," not in spec:
         numbers = _range_parts(parts)
         if numbers is None:
-            raise ConfigError([f"{where}: expected start:stop:step as finite numbers, durations or sizes {got}"])
+            raise ConfigError([f"{where}: expected start:stop:step as finite numbers or quantities of one kind "
+                               f"(durations, sizes, energy, power, bit rates, percentages, hazards) {got}"])
         start, stop, step = numbers
         if step == 0 or (stop - start) * step < 0:
             raise ConfigError([f"{where}: step {parts[2]} never reaches {parts[1]} from {parts[0]} {got}"])
