@@ -115,11 +115,11 @@ def test_a_policy_returning_bad_positions_is_named():
 class QuickFinishUnranked(BUILTIN_POLICIES["quick-finish"]):
     """quick-finish without its rank: the engine shows it every eligible check-in."""
 
-    rank = None
+    rank = SelectionPolicy.rank  # the default: no ranking
 
 
 class LotteryUnranked(BUILTIN_POLICIES["lottery"]):
-    rank = None
+    rank = SelectionPolicy.rank
 
 
 @pytest.mark.parametrize(("ranked", "unranked"), [("quick-finish", "QuickFinishUnranked"),
@@ -137,3 +137,130 @@ def test_ranked_windows_choose_like_full_windows(ranked, unranked):
     assert np.median(task_times(fast)) == pytest.approx(np.median(task_times(full)), rel=0.05)
     assert fast.summary["rounds"]["committed"] == pytest.approx(full.summary["rounds"]["committed"], rel=0.05)
     assert fast.rounds["checkins"].sum() < full.rounds["checkins"].sum()
+
+
+# ------------------------------------------------------------------ the plug-in interface
+
+
+def test_rank_is_declared_on_the_base_class_and_means_no_ranking_by_default():
+    # Every hook the engine calls is declared on SelectionPolicy; the default rank is None.
+    assert SelectionPolicy.rank(DropTablets(), None, None, None) is None
+    ranked = {name for name, cls in BUILTIN_POLICIES.items() if cls.rank is not SelectionPolicy.rank}
+    assert ranked == {"lottery", "quick-finish", "rested-first"}
+
+
+class NoneRank(DropTablets):
+    rank = None
+
+
+class ShortChoose(DropTablets):
+    def choose(self, candidates, round):
+        return np.arange(0)
+
+
+class LongRank(DropTablets):
+    def rank(self, candidates, round, rng, extra):
+        return None
+
+
+class InfiniteWindow(DropTablets):
+    def __init__(self):
+        self.window_s = float("inf")
+
+
+class BoolWindow(DropTablets):
+    def __init__(self):
+        self.window_s = True
+
+
+class TextHolds(DropTablets):
+    holds_checkins = "yes"
+
+
+class RaisingWindow(DropTablets):
+    def __init__(self):
+        pass
+
+    @property
+    def window_s(self):
+        raise RuntimeError("no window\nhere")
+
+
+@pytest.mark.parametrize(
+    ("plugin", "message"),
+    [
+        ("NoneRank", "rank must be a method rank(candidates, round, rng) (got None)"),
+        ("ShortChoose", "choose must take (candidates, round, rng) (got choose(candidates, round))"),
+        ("LongRank", "rank must take (candidates, round, rng) (got rank(candidates, round, rng, extra))"),
+        ("InfiniteWindow", "window_s must be a finite number of seconds, at least 0.001 (got inf)"),
+        ("BoolWindow", "window_s must be a finite number of seconds, at least 0.001 (got True)"),
+        ("TextHolds", "holds_checkins must be True or False (got 'yes')"),
+        ("RaisingWindow", "reading window_s failed (RuntimeError: no window here)"),
+    ],
+)
+def test_a_plugin_the_engine_could_not_drive_is_refused_in_one_line_naming_it(plugin, message):
+    name = f"tests.test_policies:{plugin}"
+    with pytest.raises(ConfigError) as info:
+        make_policy(name, {})
+    (line,) = info.value.problems
+    assert line == f"selection.policy: policy {name!r}: {message}"
+
+
+class Frozen(BUILTIN_POLICIES["quick-finish"]):
+    """quick-finish that refuses any attribute set after its constructor, and counts calls
+    to its hooks without writing onto itself (the counter is a shared list)."""
+
+    calls: list = []
+
+    def __init__(self):
+        super().__init__()
+        object.__setattr__(self, "_sealed", True)
+
+    def __setattr__(self, key, value):
+        if getattr(self, "_sealed", False):
+            raise AssertionError(f"the engine set {key!r} on the policy")
+        object.__setattr__(self, key, value)
+
+    def rank(self, candidates, round, rng):
+        Frozen.calls.append("rank")
+        return super().rank(candidates, round, rng)
+
+
+def test_the_engine_never_writes_onto_a_policy():
+    policy = make_policy("tests.test_policies:Frozen", {})
+    before = dict(vars(policy))
+    from fleetsim import engine
+
+    config = load_config(example_path(), ["fleet.devices=5000", "horizon.duration=3h", "rounds.rest=1h"])
+    original = engine.make_policy
+    engine.make_policy = lambda *a, **k: policy
+    Frozen.calls.clear()
+    try:
+        result = fleetsim.simulate(config, seed=1)
+    finally:
+        engine.make_policy = original
+    assert result.summary["rounds"]["attempted"] > 0
+    assert "rank" in Frozen.calls  # the engine called the hook on the base-class interface
+    assert vars(policy) == before
+
+
+def test_importing_the_policies_does_not_import_pandas():
+    # Loaded under a bare parent package, so that only fleetsim.policies' own imports count.
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    package = Path(fleetsim.__file__).parent
+    code = (
+        "import sys, types\n"
+        f"parent = types.ModuleType('fleetsim'); parent.__path__ = [{str(package)!r}]\n"
+        "sys.modules['fleetsim'] = parent\n"
+        "import fleetsim.policies as p\n"
+        "assert 'pandas' not in sys.modules, 'pandas imported'\n"
+        "import numpy as np\n"
+        "c = p.Candidates(np.array([3]), np.array([1.0]), np.array([50.0]), np.array([True]),\n"
+        "    {k: np.zeros(5, dtype=np.int64) for k in p.Candidates._GATHERED}, ('t',), ('r',))\n"
+        "assert c.frame()['device'].tolist() == [3] and 'pandas' in sys.modules\n"
+    )
+    run = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert run.returncode == 0, run.stderr
