@@ -21,11 +21,12 @@ from scipy import stats
 from typer.testing import CliRunner
 
 import fleetsim
+from fleetsim.analysis import chi_square, correlation, daily_table, gini, lorenz, top_share
 from fleetsim.cli import app
 from fleetsim.output import write_run
 from fleetsim.report import render_report, write_report
 from fleetsim.report.markdown import md_escape
-from fleetsim.report.survival import kaplan_meier
+from fleetsim.survival import kaplan_meier
 
 SMALL = ["fleet.devices=20000", "horizon.duration=1d", "rounds.rest=4h"]
 HOSTILE_TYPE = "<script>alert(1)</script>"
@@ -138,7 +139,8 @@ def read_table(folder: Path, name: str) -> pd.DataFrame:
     text = {"device_type", "region", "data_quartile", "cause", "phase", "status", "hour_utc"}
     header = pd.read_csv(folder / "tables" / f"{name}.csv", nrows=0).columns
     return pd.read_csv(folder / "tables" / f"{name}.csv", dtype={c: str for c in header if c in text},
-                       keep_default_na=False, na_values={c: [""] for c in header if c not in text})
+                       keep_default_na=False, na_values={c: [""] for c in header if c not in text},
+                       float_precision="round_trip")  # exact floats: step functions are read at their steps
 
 
 # ------------------------------------------------------------------------------ self-contained page
@@ -211,6 +213,14 @@ def test_every_figure_number_equals_the_run_folder(run_dir: Path) -> None:
         assert close(numbers(shown[column]), hourly[column].to_numpy(float)), column
     days = frame(parsed, "over-time-days")
     assert close(numbers(days["committed"]).sum(), r["committed"])
+    daily = read_table(run_dir, "daily")
+    assert list(days["day"]) == list(daily["day_utc"])
+    for column in days.columns[1:]:
+        assert close(numbers(days[column]), daily[column].to_numpy(float)), column
+    # The day figures are sums and extremes of the hourly table (24 hours from the horizon start).
+    day_of_hour = np.arange(len(hourly)) // 24
+    assert close(daily["committed"], hourly.groupby(day_of_hour)["committed"].sum().to_numpy())
+    assert close(daily["eligible_max"], hourly.groupby(day_of_hour)["eligible"].max().to_numpy())
 
     rounds = read_table(run_dir, "rounds")
     durations = frame(parsed, "durations")
@@ -253,6 +263,12 @@ def test_every_figure_number_equals_the_run_folder(run_dir: Path) -> None:
         reports = table["reports"].to_numpy(float)
         expected = stats.chisquare(reports, table["fleet_share"].to_numpy() * reports.sum())
         assert math.isclose(float(chi["chi_square"][i]), float(expected.statistic), rel_tol=1e-9)
+    tests = read_table(run_dir, "chi_square")
+    assert list(tests["grouping"]) == ["device_type", "region", "data_quartile"]
+    assert close(numbers(chi["chi_square"]), tests["statistic"]) and close(numbers(chi["p"]), tests["p"])
+    assert close(numbers(chi["dof"]), tests["groups"] - 1)
+    assert close(tests["statistic"][1], b["chi_square_region"])
+    assert close(tests["p"][2], b["chi_square_data_quartile_p"])
 
     counts = read_table(run_dir, "participation_counts")
     shown = frame(parsed, "participation-counts")
@@ -260,6 +276,14 @@ def test_every_figure_number_equals_the_run_folder(run_dir: Path) -> None:
     gini = frame(parsed, "gini")["value"]
     assert close(float(gini[0]), b["gini"])
     assert math.isclose(float(gini[1]), b["gini"], rel_tol=1e-9)  # the drawn Lorenz curve gives the same Gini
+    assert close(float(gini[1]), b["lorenz_gini"]) and close(float(gini[2]), b["top_tenth_share"])
+    curve = read_table(run_dir, "lorenz")
+    shown = frame(parsed, "lorenz")
+    assert close(numbers(shown["device_share"]), curve["device_share"])
+    assert close(numbers(shown["report_share"]), curve["report_share"])
+    # The busiest tenth, from the curve by hand: 1 - L(0.9), L linear between its points.
+    assert math.isclose(b["top_tenth_share"], 1 - np.interp(0.9, curve["device_share"], curve["report_share"]),
+                        rel_tol=1e-12)
 
     cost = read_table(run_dir, "device_cost")
     shown = frame(parsed, "cost")
@@ -275,6 +299,51 @@ def test_every_figure_number_equals_the_run_folder(run_dir: Path) -> None:
     assert close(numbers(shown["checkins_per_s"]).max(), load["checkins_per_s_peak_hour"])
 
 
+# ------------------------------------------------------------------------------ the statistics behind the tables
+
+
+def test_chi_square_matches_the_closed_form() -> None:
+    # Reports 10 and 30 against equal shares: expected 20 and 20, X^2 = (100 + 100) / 20 = 10
+    # with 1 degree of freedom; p from scipy's chi-square distribution (reference library).
+    statistic, p = chi_square(np.array([10, 30]), np.array([0.5, 0.5]))
+    assert math.isclose(statistic, 10.0, rel_tol=1e-12)
+    assert math.isclose(p, float(stats.chi2.sf(10.0, 1)), rel_tol=1e-12)
+    # No test without two groups, without reports, or with a group of no devices.
+    assert all(math.isnan(x) for x in chi_square(np.array([5]), np.array([1.0])))
+    assert all(math.isnan(x) for x in chi_square(np.array([0, 0]), np.array([0.5, 0.5])))
+    assert all(math.isnan(x) for x in chi_square(np.array([3, 4]), np.array([1.0, 0.0])))
+
+
+def test_lorenz_gini_and_busiest_tenth_by_hand() -> None:
+    # 10 devices: 5 with no report, 3 with 1, 2 with 4; 11 reports. The busiest device (10%)
+    # holds half of the top group's 8 reports: 4 / 11 (the curve is straight within a group).
+    reports, devices = np.array([4, 0, 1]), np.array([2, 5, 3])
+    x, y, g = lorenz(reports, devices)
+    assert np.allclose(x, [0, 0.5, 0.8, 1.0]) and np.allclose(y, [0, 0, 3 / 11, 1.0])
+    assert math.isclose(top_share(reports, devices, 0.1), 4 / 11, rel_tol=1e-12)
+    # Gini from the mean absolute difference, G = sum_ij |x_i - x_j| / (2 n^2 mean) (the
+    # standard definition), over the ten devices one by one.
+    each = np.repeat(reports, devices).astype(float)
+    mad = np.abs(each[:, None] - each[None, :]).sum() / (2 * each.size**2 * each.mean())
+    assert math.isclose(g, mad, rel_tol=1e-12) and math.isclose(gini(each), mad, rel_tol=1e-12)
+    assert math.isnan(top_share(np.array([0]), np.array([7])))
+
+
+def test_correlation_and_days_match_references() -> None:
+    rng = np.random.default_rng(3)
+    a, b = rng.normal(size=50), rng.normal(size=50)
+    assert math.isclose(correlation(a, b), float(stats.pearsonr(a, b).statistic), rel_tol=1e-12)
+    assert math.isnan(correlation(np.ones(5), b[:5]))
+    hours = 30  # one whole day and six hours
+    hourly = pd.DataFrame({"hour_utc": [f"2026-03-{2 + h // 24:02d}T{h % 24:02d}:00:00Z" for h in range(hours)],
+                           "committed": np.arange(hours), "eligible": np.arange(hours) * 2.0})
+    days = daily_table(hourly, ["committed"])
+    assert list(days["day_utc"]) == ["2026-03-02", "2026-03-03"]
+    assert list(days["committed"]) == [sum(range(24)), sum(range(24, 30))]
+    assert list(days["eligible_min"]) == [0.0, 48.0] and list(days["eligible_max"]) == [46.0, 58.0]
+    assert math.isclose(days["eligible_mean"][1], 2 * 26.5)
+
+
 # ------------------------------------------------------------------------------ survival
 
 
@@ -288,6 +357,42 @@ def test_kaplan_meier_by_hand() -> None:
     low, high = s.band_at(3.0)
     assert math.isclose(float(low), 0.6 ** math.exp(1.959963984540054 * sigma), rel_tol=1e-12)
     assert math.isclose(float(high), 0.6 ** math.exp(-1.959963984540054 * sigma), rel_tol=1e-12)
+
+
+def test_survival_tables_match_lifelines(run_dir: Path) -> None:
+    # tables/task_survival*.csv against lifelines' Kaplan-Meier fit of the event log, per
+    # device type and for the whole fleet; the page's minute table is the CSV as it stands.
+    lifelines = pytest.importorskip("lifelines")
+    events = pd.read_parquet(run_dir / "events.parquet", columns=["device_type", "outcome", "accepted_s", "ended_s"])
+    steps, minutes = read_table(run_dir, "task_survival"), read_table(run_dir, "task_survival_by_minute")
+    steps["device_type"] = steps["device_type"].fillna("")
+    minutes["device_type"] = minutes["device_type"].fillna("")
+    groups = [(str(n), "device_type", g) for n, g in events.groupby("device_type", observed=True)]
+    groups.append(("", "all", events))
+    for name, scope, group in groups:
+        duration = (group["ended_s"] - group["accepted_s"]).to_numpy()
+        dropped = (group["outcome"] == "dropout").to_numpy()
+        reference = lifelines.KaplanMeierFitter().fit(duration, dropped)
+        for table in (steps, minutes):
+            rows = table[(table["scope"] == scope) & (table["device_type"] == name)]
+            shown = rows[rows["survival"].notna()]
+            assert len(shown) > 0, (scope, name)
+            t = shown["time_s"].to_numpy(float)
+            assert np.allclose(shown["survival"], reference.survival_function_at_times(t).to_numpy(), atol=1e-10)
+            ci = reference.confidence_interval_.reindex(np.union1d(reference.timeline, t)).ffill().loc[t].to_numpy()
+            assert np.allclose(shown["low"], ci[:, 0], atol=1e-10) and np.allclose(shown["high"], ci[:, 1], atol=1e-10)
+            # At risk: tasks lasting at least t; the curve stops while 10 or more remain.
+            assert list(rows["at_risk"]) == [int((duration >= x).sum()) for x in rows["time_s"]]
+        assert int(rows["at_risk"].iloc[0]) >= 10 or rows["survival"].isna().all()
+        curve = steps[(steps["scope"] == scope) & (steps["device_type"] == name)]
+        assert curve["time_s"].iloc[0] == 0 and curve["at_risk"].iloc[-1] >= 10
+        assert (np.diff(curve["survival"]) <= 0).all()
+    bands = frame(parse(page(run_dir)), "survival-bands")
+    by_type = minutes[minutes["scope"] == "device_type"]
+    assert list(bands["device_type"]) == list(by_type["device_type"])
+    assert close(numbers(bands["minutes"]) * 60, by_type["time_s"])
+    assert close(numbers(bands["survival"]), by_type["survival"])
+    assert close(numbers(bands["at_risk"]), by_type["at_risk"])
 
 
 def test_kaplan_meier_matches_lifelines(run_dir: Path) -> None:

@@ -1,8 +1,11 @@
-"""Reading a run folder for the report: summary, configuration, event log and tables.
+"""Reading a run folder for the report: summary, settings and tables.
 
-The report reads only what :func:`fleetsim.output.write_run` wrote (reports read only the
-event log and tables). Every problem is a :class:`~fleetsim.errors.FleetsimError`
-whose one-line message names the file and what is wrong with it.
+The report reads only what :func:`fleetsim.output.write_run` wrote: summary.json, the
+run's settings (config.json, validated into a :class:`fleetsim.config.Config`) and the
+tables under tables/, which hold every figure the report shows. The event log is not read,
+but a run folder must hold a readable one. Every problem is a
+:class:`~fleetsim.errors.FleetsimError` whose one-line message names the file and what is
+wrong with it.
 """
 
 from __future__ import annotations
@@ -14,14 +17,17 @@ from typing import Any
 
 import pandas as pd
 
-from ..errors import FleetsimError
+from ..config import Config, build_config
+from ..errors import ConfigError, FleetsimError
 from ..output import read_summary, unescape_frame
+from ..survival import SURVIVAL_COLUMNS
 
 __all__ = ["RunFolder", "read_run_folder"]
 
 # Columns holding names (from the fleet file or the metrics): read as text, never as numbers
 # or missing values, so a region called "NA" or "1" stays exactly what the fleet file says.
-_TEXT_COLUMNS = {"device_type", "region", "data_quartile", "cause", "phase", "status", "hour_utc", "opened_utc"}
+_TEXT_COLUMNS = {"device_type", "region", "data_quartile", "cause", "phase", "status", "hour_utc", "opened_utc",
+                 "day_utc", "grouping", "scope"}
 
 # Every table the report reads, with the columns it needs.
 _TABLE_COLUMNS: dict[str, tuple[str, ...]] = {
@@ -36,6 +42,12 @@ _TABLE_COLUMNS: dict[str, tuple[str, ...]] = {
     "dropouts": ("cause", "phase", "dropouts"),
     "device_cost": ("device_type", "participations", "battery_pct_p50", "battery_pct_p90",
                     "megabytes_p50", "megabytes_p90", "energy_wh_mean"),
+    "daily": ("day", "day_utc", "committed", "failed", "abandoned", "eligible_min", "eligible_mean",
+              "eligible_max"),
+    "chi_square": ("grouping", "groups", "reports", "statistic", "dof", "p"),
+    "lorenz": ("device_share", "report_share"),
+    "task_survival": SURVIVAL_COLUMNS,
+    "task_survival_by_minute": SURVIVAL_COLUMNS,
 }
 _BIAS_COLUMNS = ("devices", "fleet_share", "eligible_share", "accepted_share", "report_share", "weight_share",
                  "representation_ratio", "ratio_low", "ratio_high", "accepted", "reports", "never_share")
@@ -47,34 +59,32 @@ for _key, _name in BIAS_GROUPINGS.items():
     _TABLE_COLUMNS[_name] = (_key, *_BIAS_COLUMNS)
 
 _EVENT_COLUMNS = ("device_type", "outcome", "accepted_s", "ended_s")
+"""Columns a run folder's event log must have (the report checks them; its figures come from tables)."""
 
 _SUMMARY_KEYS = (
     "scenario", "seed", "config_hash", "policy", "devices", "horizon_start", "simulated_hours", "caution",
     "rounds.attempted", "rounds.committed", "rounds.failed", "rounds.abandoned", "rounds.outage",
     "rounds.committed_per_hour", "rounds.selection_s", "rounds.report_s", "rounds.duration_s",
-    "participations.accepted", "participations.used_reports",
+    "rounds.selection_at_timeout", "rounds.eligible_correlation",
+    "participations.accepted", "participations.used_reports", "participations.task_s",
     "waste.compute_fraction", "waste.bytes_fraction", "waste.energy_fraction",
-    "bias.coverage", "bias.gini", "bias.chi_square", "bias.chi_square_p",
+    "bias.coverage", "bias.gini", "bias.chi_square", "bias.chi_square_p", "bias.lorenz_gini",
+    "bias.top_tenth_share",
     "load.peak_working", "load.mean_working", "load.checkins_per_s_peak_hour",
 )
-_CONFIG_KEYS = ("horizon.start", "horizon.duration", "fleet.devices", "workload", "rounds.target_reports",
-                "rounds.over_selection", "rounds.selection_timeout", "rounds.report_deadline",
-                "rounds.checkin_every", "selection.policy")
 
 
 @dataclass(frozen=True)
 class RunFolder:
     """The parts of a run folder the report uses.
 
-    ``events`` holds only the event-log columns the report needs (device_type, outcome,
-    accepted_s, ended_s); ``tables`` maps a table name (``hourly``, ``bias_by_region``, ...)
-    to its DataFrame as written under ``tables/``.
+    ``config``: the run's validated settings; ``tables`` maps a table name (``hourly``,
+    ``bias_by_region``, ...) to its DataFrame as written under ``tables/``.
     """
 
     path: Path
     summary: dict[str, Any]
-    config: dict[str, Any]
-    events: pd.DataFrame
+    config: Config
     tables: dict[str, pd.DataFrame]
 
     @property
@@ -122,7 +132,10 @@ def _read_table(path: Path, columns: tuple[str, ...]) -> pd.DataFrame:
         # Only empty fields are missing values: pandas would otherwise read a name such as
         # "NA" or "null" as NaN.
         missing = {c: [""] for c in header if c not in _TEXT_COLUMNS}
-        table = unescape_frame(pd.read_csv(path, dtype=text, keep_default_na=False, na_values=missing))
+        # round_trip: every float exactly as written (the default parser may be off by one unit
+        # in the last place).
+        table = unescape_frame(pd.read_csv(path, dtype=text, keep_default_na=False, na_values=missing,
+                                           float_precision="round_trip"))
     except FileNotFoundError:
         raise FleetsimError(f"{path}: missing; is {path.parent.parent} a run folder?") from None
     except (OSError, ValueError, pd.errors.ParserError) as exc:
@@ -133,16 +146,32 @@ def _read_table(path: Path, columns: tuple[str, ...]) -> pd.DataFrame:
     return table
 
 
-def _read_events(path: Path) -> pd.DataFrame:
+def _check_events(path: Path) -> None:
+    """Check that the event log is a readable Parquet file with the participation columns.
+
+    Only its schema is read (cheap): the report's figures come from the tables.
+    """
+    import pyarrow.parquet as pq
+
     try:
-        events = pd.read_parquet(path, columns=list(_EVENT_COLUMNS))
+        names = set(pq.read_schema(path).names)
     except FileNotFoundError:
         raise FleetsimError(f"{path}: missing; is {path.parent} a run folder?") from None
-    except Exception as exc:  # pyarrow raises several kinds (ArrowInvalid, ArrowTypeError, KeyError)
+    except Exception as exc:  # pyarrow raises several kinds (ArrowInvalid, OSError, ...)
         raise FleetsimError(f"{path}: cannot read the event log ({' '.join(str(exc).split())})") from None
-    events["device_type"] = events["device_type"].astype(str)
-    events["outcome"] = events["outcome"].astype(str)
-    return events
+    lacking = [c for c in _EVENT_COLUMNS if c not in names]
+    if lacking:
+        raise FleetsimError(f"{path}: lacks column(s) {', '.join(lacking)}")
+
+
+def _read_config(path: Path, folder: Path) -> Config:
+    """The run's settings from config.json, validated as a fleet file is."""
+    raw = _read_json(path, (), folder)
+    try:
+        return build_config(raw, source=str(path))
+    except ConfigError as exc:
+        first = exc.problems[0] if exc.problems else f"{path}: not valid settings"
+        raise FleetsimError(f"{first}; was it written by this version of fleetsim?") from None
 
 
 def read_run_folder(folder: str | Path) -> RunFolder:
@@ -153,12 +182,12 @@ def read_run_folder(folder: str | Path) -> RunFolder:
     if not path.is_dir():
         raise FleetsimError(f"{path}: not a folder (expected a run folder written by 'fleetsim run')")
     summary = _read_json(path / "summary.json", _SUMMARY_KEYS, path)
-    config = _read_json(path / "config.json", _CONFIG_KEYS, path)
+    config = _read_config(path / "config.json", path)
     tables = {name: _read_table(path / "tables" / f"{name}.csv", cols) for name, cols in _TABLE_COLUMNS.items()}
-    events = _read_events(path / "events.parquet")
+    _check_events(path / "events.parquet")
     hourly = tables["hourly"]
     regions = list(tables["bias_by_region"]["region"])
     lacking = [f"eligible:{r}" for r in regions if f"eligible:{r}" not in hourly.columns]
     if lacking:
         raise FleetsimError(f"{path / 'tables' / 'hourly.csv'}: lacks column(s) {', '.join(lacking)}")
-    return RunFolder(path=path, summary=summary, config=config, events=events, tables=tables)
+    return RunFolder(path=path, summary=summary, config=config, tables=tables)

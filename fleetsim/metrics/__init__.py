@@ -1,0 +1,142 @@
+"""Rounds, straggler waste and participation bias, computed from a run's record only.
+
+Definitions are in docs/metrics.md; every figure in summary.json and the report comes from
+the tables built here (one source of truth). The statistics themselves are pure functions
+in :mod:`fleetsim.analysis` and :mod:`fleetsim.survival`.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+import pandas as pd
+
+from ..analysis import (
+    chi_square_table,
+    correlation,
+    daily_table,
+    gini,
+    lorenz,
+    lorenz_table,
+    mean_working,
+    share_at_limit,
+    top_share,
+    wilson_interval,
+)
+from ..survival import task_durations, task_survival_tables
+from ..units import format_instant
+from .bias import BIAS_TABLES, bias_tables, participation_counts
+from .load import hourly_table
+from .rounds import closed_per_hour, round_frame
+from .summary import bias_map, clean, participations_part, rounds_part, waste_part
+from .waste import device_cost, dropout_table, waste_by_cause, waste_by_device_type, waste_sums
+
+if TYPE_CHECKING:
+    from ..record import RunRecord
+
+__all__ = ["Metrics", "compute_metrics", "gini", "wilson_interval", "CAUTION", "BIAS_TABLES"]
+
+CAUTION = (
+    "These figures come from a model of a fleet, not from real devices. Fit the fleet from "
+    "real telemetry and follow your organisation's review before a change touches real "
+    "users' devices, batteries or data plans."
+)
+
+
+@dataclass(frozen=True)
+class Metrics:
+    """``summary``: JSON-ready figures (summary.json); ``tables``: frames by name (tables/*.csv)."""
+
+    summary: dict[str, Any]
+    tables: dict[str, pd.DataFrame]
+
+
+def _bias_part(bias: dict[str, pd.DataFrame], chi: pd.DataFrame, counts: pd.DataFrame,
+               reports_per_device: np.ndarray) -> dict[str, Any]:
+    """``bias`` of summary.json: shares by group, coverage, concentration and chi-square tests."""
+    tests = chi.set_index("grouping")
+    reports, devices = counts["reports"].to_numpy(), counts["devices"].to_numpy()
+    n = reports_per_device.size
+    return {
+        **{f"by_{key}": bias_map(table, key) for key, table in bias.items()},
+        "coverage": float((reports_per_device > 0).mean()) if n else float("nan"),
+        "gini": gini(reports_per_device),
+        "chi_square": tests.at["device_type", "statistic"],
+        "chi_square_p": tests.at["device_type", "p"],
+        "chi_square_region": tests.at["region", "statistic"],
+        "chi_square_region_p": tests.at["region", "p"],
+        "chi_square_data_quartile": tests.at["data_quartile", "statistic"],
+        "chi_square_data_quartile_p": tests.at["data_quartile", "p"],
+        "lorenz_gini": lorenz(reports, devices)[2],
+        "top_tenth_share": top_share(reports, devices, 0.1),
+    }
+
+
+def compute_metrics(record: RunRecord) -> Metrics:
+    """Every table and the summary of one run, from its record (no I/O)."""
+    config, fleet, parts, census = record.config, record.fleet, record.participations, record.census
+    start, horizon_s = config.horizon.start, float(config.horizon.duration)
+    hours = horizon_s / 3600.0
+    n_hours = int(math.ceil(hours))
+    type_names, region_names = list(fleet.type_names), list(fleet.region_names)
+    rounds = round_frame(record.rounds, start)
+
+    labelled = parts.assign(bytes=parts["bytes_down"] + parts["bytes_up"])
+    wasted = labelled[~labelled["used"]]
+    by_cause = waste_by_cause(wasted)
+    by_type = waste_by_device_type(labelled, wasted, type_names)
+
+    used = parts["used"].to_numpy()
+    reports_per_device = np.bincount(parts["device"].to_numpy()[used], minlength=fleet.size)
+    bias = bias_tables(fleet, parts, census, reports_per_device)
+    counts = participation_counts(reports_per_device)
+    chi = chi_square_table(bias)
+
+    closed = closed_per_hour(rounds, n_hours)
+    hourly, peak = hourly_table(start, n_hours, closed, census, parts, region_names, config.rounds.checkin_every)
+    survival, survival_minutes = task_survival_tables(parts, type_names)
+
+    tables = {
+        "rounds": rounds,
+        "waste_by_cause": by_cause,
+        "waste_by_device_type": by_type,
+        **{BIAS_TABLES[key]: table for key, table in bias.items()},
+        "participation_counts": counts,
+        "dropouts": dropout_table(labelled[labelled["outcome"] == "dropout"]),
+        "device_cost": device_cost(labelled),
+        "hourly": hourly,
+        "daily": daily_table(hourly, list(closed)),
+        "chi_square": chi,
+        "lorenz": lorenz_table(counts),
+        "task_survival": survival,
+        "task_survival_by_minute": survival_minutes,
+    }
+    selection = rounds.loc[rounds["status"] != "abandoned", "selection_s"].to_numpy(dtype=float)
+    round_extra = {
+        "selection_at_timeout": share_at_limit(selection, float(config.rounds.selection_timeout)),
+        "eligible_correlation": correlation(closed["committed"], hourly["eligible"].to_numpy()),
+    }
+    summary = {
+        "scenario": config.scenario,
+        "fleet_file": record.source,
+        "seed": record.seed,
+        "config_hash": record.config_hash,
+        "policy": record.policy,
+        "devices": fleet.size,
+        "horizon_start": format_instant(start),
+        "simulated_hours": hours,
+        "rounds": rounds_part(rounds, hours, round_extra),
+        "participations": participations_part(labelled, used, task_durations(parts)[0]),
+        "waste": waste_part(waste_sums(labelled), waste_sums(wasted), by_cause, by_type),
+        "bias": _bias_part(bias, chi, counts, reports_per_device),
+        "load": {
+            "peak_working": int(peak),
+            "mean_working": mean_working(parts["accepted_s"].to_numpy(), parts["ended_s"].to_numpy(), horizon_s),
+            "checkins_per_s_peak_hour": float(hourly["checkins_per_s"].max()) if n_hours else None,
+        },
+        "caution": CAUTION,
+    }
+    return Metrics(summary=clean(summary), tables=tables)

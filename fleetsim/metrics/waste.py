@@ -1,0 +1,85 @@
+"""Straggler waste, dropouts and the cost of a participation to a device (docs/metrics.md)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+__all__ = ["waste_sums", "waste_by_cause", "waste_by_device_type", "dropout_table", "device_cost"]
+
+_RESOURCES = ["compute_s", "bytes", "energy_wh"]
+
+
+def waste_sums(frame: pd.DataFrame) -> dict[str, float]:
+    """Training seconds, bytes (down + up) and Wh of the participations in ``frame``."""
+    return {
+        "compute_s": float(frame["compute_s"].sum()),
+        "bytes": float((frame["bytes_down"] + frame["bytes_up"]).sum()),
+        "energy_wh": float(frame["energy_wh"].sum()),
+    }
+
+
+def waste_by_cause(wasted: pd.DataFrame) -> pd.DataFrame:
+    """Wasted work per waste cause: ``cause``, the three resources, ``participations``, ``compute_share``.
+
+    ``wasted`` holds the unused participations with a ``bytes`` column (down + up).
+    """
+    total_compute = float(wasted["compute_s"].sum())
+    by_cause = (
+        wasted.groupby("waste_cause", observed=False)[_RESOURCES].sum()
+        .assign(participations=wasted.groupby("waste_cause", observed=False).size())
+        .drop(index="used", errors="ignore")
+        .reset_index()
+        .rename(columns={"waste_cause": "cause"})
+    )
+    by_cause["compute_share"] = by_cause["compute_s"] / max(total_compute, 1e-300)
+    return by_cause
+
+
+def waste_by_device_type(labelled: pd.DataFrame, wasted: pd.DataFrame, type_names: list[str]) -> pd.DataFrame:
+    """All and wasted compute, bytes and energy per device type, and the wasted fractions."""
+    by_type_all = labelled.groupby("device_type", observed=False)[_RESOURCES].sum()
+    by_type_waste = wasted.groupby("device_type", observed=False)[_RESOURCES].sum()
+    table = pd.DataFrame(
+        {
+            "device_type": type_names,
+            "compute_s": by_type_all["compute_s"].to_numpy(),
+            "wasted_compute_s": by_type_waste["compute_s"].to_numpy(),
+            "bytes": by_type_all["bytes"].to_numpy(),
+            "wasted_bytes": by_type_waste["bytes"].to_numpy(),
+            "energy_wh": by_type_all["energy_wh"].to_numpy(),
+            "wasted_energy_wh": by_type_waste["energy_wh"].to_numpy(),
+        }
+    )
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for key, col in (("compute", "compute_s"), ("bytes", "bytes"), ("energy", "energy_wh")):
+            table[f"{key}_fraction"] = table[f"wasted_{col}"] / table[col]
+    return table
+
+
+def dropout_table(drops: pd.DataFrame) -> pd.DataFrame:
+    """Dropouts by ``cause`` and ``phase`` (only the pairs that occurred)."""
+    if not len(drops):
+        return pd.DataFrame(columns=["cause", "phase", "dropouts"])
+    return drops.groupby(["cause", "phase"], observed=True).size().rename("dropouts").reset_index()
+
+
+def _p90(values: pd.Series) -> float:
+    return float(values.quantile(0.9)) if len(values) else np.nan
+
+
+def device_cost(labelled: pd.DataFrame) -> pd.DataFrame:
+    """Per device type: participations, battery % and MB p50/p90 per participation, mean Wh."""
+    return (
+        labelled.assign(megabytes=labelled["bytes"] / 1e6)
+        .groupby("device_type", observed=False)
+        .agg(
+            participations=("device", "size"),
+            battery_pct_p50=("battery_used_pct", "median"),
+            battery_pct_p90=("battery_used_pct", _p90),
+            megabytes_p50=("megabytes", "median"),
+            megabytes_p90=("megabytes", _p90),
+            energy_wh_mean=("energy_wh", "mean"),
+        )
+        .reset_index()
+    )

@@ -1,0 +1,91 @@
+"""Section 5: where device work is wasted (tables/waste_by_cause.csv, tables/waste_by_device_type.csv)."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from . import figures
+from .model import Chart, Column, Section, Table
+from .rundir import RunFolder
+from .text import column, opt, pct
+
+__all__ = ["waste_section"]
+
+_RESOURCES = (("Compute (device hours)", "compute_s", "wasted_compute_s", 3600.0, "compute_fraction"),
+              ("Data (GB)", "bytes", "wasted_bytes", 1e9, "bytes_fraction"),
+              ("Energy (Wh)", "energy_wh", "wasted_energy_wh", 1.0, "energy_fraction"))
+"""(panel title, total column, wasted column, unit divisor, fraction column) per resource."""
+
+
+def _by_cause(r: RunFolder) -> tuple[Chart, Table]:
+    by_cause = r.tables["waste_by_cause"]
+    causes = list(by_cause["cause"])
+    hours = column(by_cause, "compute_s") / 3600.0
+    gigabytes = column(by_cause, "bytes") / 1e9
+    energy = column(by_cause, "energy_wh")
+    chart = Chart(
+        figures.waste_by_cause(causes, [("Compute (device hours)", hours), ("Data (GB)", gigabytes),
+                                        ("Energy (Wh)", energy)], "f-waste-cause"),
+        "Bars of wasted compute, data and energy for each waste cause.",
+        "Labels: the cause's share of all wasted compute, data or energy.")
+    table = Table(
+        "waste-cause", "Wasted work by cause (tables/waste_by_cause.csv)",
+        [Column("cause", "Cause", "text"), Column("participations", "Participations", "int"),
+         Column("compute_h", "Compute (h)"), Column("data_gb", "Data (GB)"), Column("energy_wh", "Energy (Wh)"),
+         Column("compute_share", "Share of wasted compute", "pct")],
+        [[c, int(p), float(h), float(g), float(e), float(sh)] for c, p, h, g, e, sh in
+         zip(causes, by_cause["participations"], hours, gigabytes, energy, by_cause["compute_share"], strict=True)])
+    return chart, table
+
+
+def _by_type(r: RunFolder) -> tuple[Chart, Table]:
+    by_type = r.tables["waste_by_device_type"]
+    types = list(by_type["device_type"])
+    panels = []
+    for title, total_column, wasted_column, scale, _ in _RESOURCES:
+        t, wa = column(by_type, total_column) / scale, column(by_type, wasted_column) / scale
+        panels.append((title, t - wa, wa))
+    chart = Chart(figures.waste_by_type(types, panels, "f-waste-type"),
+                  "Bars of used and wasted compute, data and energy for each device type.",
+                  "Labels: the wasted share of the device type's own compute, data or energy.")
+    columns = [Column("device_type", "Device type", "text"),
+               Column("compute_h", "Compute (h)"), Column("wasted_compute_h", "Wasted compute (h)"),
+               Column("compute_fraction", "Compute wasted", "pct"),
+               Column("data_gb", "Data (GB)"), Column("wasted_data_gb", "Wasted data (GB)"),
+               Column("bytes_fraction", "Data wasted", "pct"),
+               Column("energy_wh", "Energy (Wh)"), Column("wasted_energy_wh", "Wasted energy (Wh)"),
+               Column("energy_fraction", "Energy wasted", "pct")]
+    rows = []
+    for i, name in enumerate(types):
+        row: list[Any] = [name]
+        for (_, used, wasted), (*_, fraction) in zip(panels, _RESOURCES, strict=True):
+            row += [float(used[i] + wasted[i]), float(wasted[i]), opt(float(by_type[fraction].iloc[i]))]
+        rows.append(row)
+    table = Table("waste-type", "Work used and wasted by device type (tables/waste_by_device_type.csv)",
+                  columns, rows)
+    return chart, table
+
+
+def waste_section(r: RunFolder) -> Section:
+    """Where is device work wasted? By cause and by device type."""
+    by_cause, by_type, w = r.tables["waste_by_cause"], r.tables["waste_by_device_type"], r.summary["waste"]
+    causes = list(by_cause["cause"])
+    share = column(by_cause, "compute_share")
+    hours = column(by_cause, "compute_s")
+    order = np.argsort(-np.nan_to_num(hours), kind="stable")
+    leaders = [f"{causes[i]} ({pct(share[i])})" for i in order[:2] if np.nansum(hours) > 0 and hours[i] > 0]
+    types = list(by_type["device_type"])
+    fractions = column(by_type, "compute_fraction")
+    worst = types[int(np.nanargmax(fractions))] if np.isfinite(fractions).any() else None
+    answer = (
+        f"{pct(w['compute_fraction'])} of device compute, {pct(w['bytes_fraction'])} of data and "
+        f"{pct(w['energy_fraction'])} of energy went into no committed round"
+        + (f"; the largest causes of wasted compute are {' and '.join(leaders)}" if leaders else "")
+        + (f"; {worst} wastes the largest share of its own compute ({pct(np.nanmax(fractions))})." if worst else ".")
+    )
+    cause_chart, cause_table = _by_cause(r)
+    type_chart, type_table = _by_type(r)
+    return Section("waste", "Where is device work wasted?", answer, charts=[cause_chart, type_chart],
+                   tables=[cause_table, type_table])
