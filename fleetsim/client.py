@@ -2,9 +2,7 @@
 
 When a round accepts a cohort, every member's task is resolved together from its traits:
 
-- download time = model bytes * 8 / (down Mbit/s * 10**6), upload likewise;
-- training time = ceil(samples / batch) * batch * epochs * per-sample cost (the last batch
-  of an epoch is padded to full size);
+- download, training and upload times (:func:`task_times`, the one place of the formula);
 - interruptions, each measured from acceptance: a required signal turning off
   (exponential with the signal's mean on-duration: its off-rate does not depend on the
   hour), a crash (exponential at the crash hazard), the OS execution limit, and the battery
@@ -21,19 +19,38 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .config import SIGNALS, Config, Disruption
+from .config import SIGNALS, Config, Disruption, Workload
+from .events import CAUSES
 
-__all__ = ["CAUSES", "PHASES", "Cohort", "resolve_cohort", "disruption_factor"]
-
-CAUSES = ("none", "signal:idle", "signal:charging", "signal:unmetered", "battery", "os-limit", "crash")
-"""Dropout causes by code (0: no dropout)."""
-
-PHASES = ("none", "download", "train", "upload")
-"""Task phases by code (0: not applicable)."""
+__all__ = ["Cohort", "resolve_cohort", "disruption_factor", "task_times"]
 
 _BATTERY = CAUSES.index("battery")
 _OS_LIMIT = CAUSES.index("os-limit")
 _CRASH = CAUSES.index("crash")
+
+
+def task_times(
+    work: Workload,
+    down_mbps: np.ndarray,
+    up_mbps: np.ndarray,
+    samples: np.ndarray,
+    sample_cost_s: np.ndarray,
+    bandwidth: np.ndarray | float = 1.0,
+    compute: np.ndarray | float = 1.0,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Download, training and upload time of each device's task, s.
+
+    download = model bytes * 8 / (down Mbit/s * 10**6 * ``bandwidth``), upload likewise with
+    the update's bytes; training = ceil(samples / batch) * batch * epochs * per-sample cost s
+    * ``compute`` (the last batch of an epoch is padded to full size). ``bandwidth`` and
+    ``compute`` are disruption factors (1: none). A zero rate gives an infinite time.
+    """
+    with np.errstate(divide="ignore"):
+        download_s = work.model_size * 8.0 / (down_mbps * 1e6 * bandwidth)
+        upload_s = work.upload_bytes * 8.0 / (up_mbps * 1e6 * bandwidth)
+    padded = np.ceil(samples / work.batch_size) * work.batch_size
+    train_s = padded * work.epochs * sample_cost_s * compute
+    return download_s, train_s, upload_s
 
 
 def disruption_factor(
@@ -168,11 +185,10 @@ def resolve_cohort(
     crash = factor("crash-surge")
     model_bytes = work.model_size
     update_bytes = work.upload_bytes
-    with np.errstate(divide="ignore"):
-        download_s = model_bytes * 8.0 / (fleet_arrays["down_mbps"] * 1e6 * bandwidth)
-        upload_s = update_bytes * 8.0 / (fleet_arrays["up_mbps"] * 1e6 * bandwidth)
-    padded = np.ceil(fleet_arrays["samples"] / work.batch_size) * work.batch_size
-    train_s = padded * work.epochs * fleet_arrays["sample_cost_s"] * compute
+    download_s, train_s, upload_s = task_times(
+        work, fleet_arrays["down_mbps"], fleet_arrays["up_mbps"], fleet_arrays["samples"],
+        fleet_arrays["sample_cost_s"], bandwidth, compute,
+    )
 
     # Each interruption as a relative time; draw all of them so the stream does not depend on
     # which ones the workload turns on (common random numbers across settings).
@@ -188,7 +204,7 @@ def resolve_cohort(
             tracked[s] = signal_off[s]
     tracked[SIGNALS.index("charging")] = np.where(charging, charging_off, np.inf)
 
-    hazard = work.crash_per_hour / 3600.0 * crash
+    hazard = work.crash_rate / 3600.0 * crash  # crash_rate is per hour
     with np.errstate(divide="ignore"):
         crash_at = np.where(hazard > 0, crash_draw / hazard, np.inf)
     cohort = Cohort(
@@ -209,6 +225,18 @@ def resolve_cohort(
         model_bytes=model_bytes,
         update_bytes=update_bytes,
     )
+    _first_interruption(cohort, work, signal_off, crash_at)
+    return cohort
+
+
+def _first_interruption(cohort: Cohort, work: Workload, signal_off: np.ndarray, crash_at: np.ndarray) -> None:
+    """Set the cohort's ``drop_at`` and ``cause``: the earliest interruption before the task
+    ends (a required signal off, battery below the minimum, the OS limit, a crash), if any.
+
+    ``signal_off`` is [S, n], the time after acceptance each signal turns off; ``crash_at``
+    the time of a crash (inf: none), s.
+    """
+    n = cohort.device.size
     candidates = [np.full(n, np.inf)] * len(CAUSES)
     for s, name in enumerate(SIGNALS):
         if name in work.requires:
@@ -222,4 +250,3 @@ def resolve_cohort(
     drops = first_at < cohort.task_s
     cohort.drop_at = np.where(drops, first_at, np.inf)
     cohort.cause = np.where(drops, first + 1, 0).astype(np.int8)
-    return cohort

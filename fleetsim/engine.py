@@ -1,5 +1,8 @@
 """Wiring: ``simulate(config, seed) -> Result``.
 
+The engine builds the run's :class:`fleetsim.record.RunRecord` and hands it to a
+:class:`fleetsim.result.Result`, which computes the figures on demand.
+
 Random streams (each a ``numpy.random.Generator`` derived from the seed and its name, see
 :func:`fleetsim.fleet.stream`): ``fleet`` (device traits and check-in phases), ``checkin``
 (signal states seen at check-ins), ``battery`` (battery levels at check-in), ``task``
@@ -10,18 +13,19 @@ Random streams (each a ``numpy.random.Generator`` derived from the seed and its 
 from __future__ import annotations
 
 from collections.abc import Callable, Generator
-from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 import pandas as pd
 import simpy
 
-from .config import Config, check_memory, config_hash
+from .config import Config, check_memory
 from .errors import FleetsimError
 from .events import EventLog
 from .fleet import Fleet, sample_fleet, stream
 from .policies import make_policy
+from .record import RunRecord
+from .result import Result
 from .runtime import FleetRuntime
 from .server import RoundServer
 from .signals import build_signal_tables
@@ -42,67 +46,6 @@ CENSUS_SAMPLE = 4096
 CENSUS_MIN_PER_GROUP = 64
 """At least this many devices are drawn from each group (all of a smaller group), so that a
 rare group's estimate rests on devices of its own rather than on a share of a uniform draw."""
-
-
-@dataclass
-class Result:
-    """One simulation's outcome: the event log, the fleet and the derived tables.
-
-    ``participations``: one row per accepted device (see docs/metrics.md for columns; device
-    type, region, outcome, cause, phase and waste cause are labels, pandas Categorical);
-    ``rounds``: one row per round (``status`` a label); ``census``: eligible devices estimated
-    every 15 minutes by device type and region, with standard errors; ``fleet``: the sampled
-    devices. ``summary`` and ``tables`` come
-    from :mod:`fleetsim.metrics` on first use.
-    """
-
-    config: Config
-    seed: int
-    fleet: Fleet
-    participations: pd.DataFrame
-    rounds: pd.DataFrame
-    census: pd.DataFrame
-    policy: str
-    source: str | None = None  # the fleet file, when the config came from one
-    _metrics: Any = field(default=None, repr=False)
-
-    @property
-    def config_hash(self) -> str:
-        return config_hash(self.config)
-
-    @property
-    def horizon_s(self) -> float:
-        return float(self.config.horizon.duration)
-
-    def _computed(self) -> Any:
-        if self._metrics is None:
-            from .metrics import compute_metrics
-
-            self._metrics = compute_metrics(self)
-        return self._metrics
-
-    @property
-    def summary(self) -> dict[str, Any]:
-        """The run's headline figures as plain JSON-ready values (see docs/metrics.md)."""
-        return self._computed().summary
-
-    @property
-    def tables(self) -> dict[str, pd.DataFrame]:
-        """Derived tables by name (rounds, waste, bias, hourly, participation counts)."""
-        return self._computed().tables
-
-    def _repr_html_(self) -> str:
-        from .metrics import summary_html
-
-        return summary_html(self)
-
-    def __repr__(self) -> str:
-        s = self.summary
-        r = s["rounds"]
-        return (
-            f"<Result seed={self.seed} devices={s['devices']} hours={s['simulated_hours']:g} "
-            f"rounds committed={r['committed']}/{r['attempted']}>"
-        )
 
 
 def simulate(
@@ -155,7 +98,7 @@ def simulate(
 
     census_frame = _census_frame(fleet, census_times, census_rows)
     rounds_frame, parts_frame = _after_warmup(log.rounds(), log.participations(fleet.type_names, fleet.region_names))
-    return Result(
+    record = RunRecord(
         config=config,
         seed=seed,
         fleet=fleet,
@@ -164,6 +107,7 @@ def simulate(
         census=census_frame,
         policy=getattr(policy, "name", type(policy).__name__),
     )
+    return Result(record)
 
 
 def warmup_of(config: Config) -> float:

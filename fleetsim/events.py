@@ -15,13 +15,20 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .client import CAUSES, PHASES
-
-__all__ = ["OUTCOMES", "WASTE_CAUSES", "ROUND_STATUS", "EventLog"]
+__all__ = [
+    "OUTCOMES", "CAUSES", "PHASES", "WASTE_CAUSES", "ROUND_STATUS", "EventLog", "round_status", "outcome_codes",
+    "waste_codes",
+]
 
 OUTCOMES = ("reported", "late", "stopped", "dropout")
 """What became of an accepted device: its report arrived before close, after close, it was
 told to stop at close, or it dropped out."""
+
+CAUSES = ("none", "signal:idle", "signal:charging", "signal:unmetered", "battery", "os-limit", "crash")
+"""Dropout causes by code (0: no dropout)."""
+
+PHASES = ("none", "download", "train", "upload")
+"""Task phases by code (0: not applicable)."""
 
 WASTE_CAUSES = (
     "used",
@@ -40,6 +47,52 @@ WASTE_CAUSES = (
 """Why a participation's work was not used by a committed round ("used": it was)."""
 
 ROUND_STATUS = ("committed", "failed", "abandoned", "outage")
+"""What became of a round: it committed, too few reports came by the deadline, too few
+devices were accepted by the selection timeout, or a server outage cut it."""
+
+_OUT = {name: i for i, name in enumerate(OUTCOMES)}
+_WASTE = {name: i for i, name in enumerate(WASTE_CAUSES)}
+# A dropout's work is wasted for its dropout cause (the names are shared; code 0 "none" is unused).
+_CAUSE_TO_WASTE = np.array([_WASTE["used"]] + [_WASTE[c] for c in CAUSES[1:]], dtype=np.int8)
+_ROUND_WASTE = {"failed": "failed-round", "abandoned": "abandoned-round", "outage": "server-outage"}
+
+
+def round_status(lost: bool, enough: bool, reports: int, required: int) -> str:
+    """A round's status: ``outage`` if an outage cut it, ``abandoned`` if too few devices were
+    accepted (``enough`` false), else ``committed`` with at least ``required`` reports, else
+    ``failed``."""
+    if lost:
+        return "outage"
+    if not enough:
+        return "abandoned"
+    return "committed" if reports >= required else "failed"
+
+
+def outcome_codes(reported: np.ndarray, late: np.ndarray, dropout: np.ndarray) -> np.ndarray:
+    """Outcome codes (into OUTCOMES) from disjoint masks; a device in none of them was stopped."""
+    outcome = np.full(reported.shape, _OUT["stopped"], dtype=np.int8)
+    outcome[reported] = _OUT["reported"]
+    outcome[late] = _OUT["late"]
+    outcome[dropout] = _OUT["dropout"]
+    return outcome
+
+
+def waste_codes(status: str, late: np.ndarray, dropout: np.ndarray, cause: np.ndarray, used: np.ndarray) -> np.ndarray:
+    """Why each participation's work was not used, as codes into WASTE_CAUSES.
+
+    ``late``, ``dropout`` and ``used`` are masks over the round's participations, ``cause``
+    their dropout cause codes (into CAUSES), ``status`` the round's status. A dropout is
+    wasted for its cause; otherwise a round that did not commit wastes the work for the
+    round's reason, a late report for being late, and anything else was stopped at close;
+    ``used`` (reports of a committed round) overrides all.
+    """
+    waste = np.full(late.shape, _WASTE["stopped-at-close"], dtype=np.int8)
+    waste[late] = _WASTE["late"]
+    waste[dropout] = _CAUSE_TO_WASTE[cause[dropout]]
+    if status != "committed":
+        waste[~dropout] = _WASTE[_ROUND_WASTE[status]]
+    waste[used] = _WASTE["used"]
+    return waste
 
 PARTICIPATION_COLUMNS = {
     "round": np.int32,

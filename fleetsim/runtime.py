@@ -18,9 +18,9 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats
 
+from .client import task_times
 from .config import SIGNALS, Config
 from .fleet import Fleet
-from .policies import Candidates
 from .signals import SignalState, SignalTables
 
 __all__ = ["FleetRuntime"]
@@ -66,13 +66,11 @@ class FleetRuntime:
         floor = self.min_battery / 100.0
         self.battery_ok_charging = stats.beta.sf(floor, *self.beta_charging.T)
         self.battery_ok_unplugged = stats.beta.sf(floor, *self.beta_unplugged.T)
-        work = config.workload
-        padded = np.ceil(fleet.samples / work.batch_size) * work.batch_size
-        self.predicted_s = (
-            work.model_size * 8.0 / (fleet.down_mbps * 1e6)
-            + padded * work.epochs * fleet.sample_cost_s
-            + work.upload_bytes * 8.0 / (fleet.up_mbps * 1e6)
+        # Each device's task time without disruptions (what a policy may rank by), s.
+        download_s, train_s, upload_s = task_times(
+            config.workload, fleet.down_mbps, fleet.up_mbps, fleet.samples, fleet.sample_cost_s
         )
+        self.predicted_s = download_s + train_s + upload_s
 
     # ------------------------------------------------------------------ check-in ticks
 
@@ -166,12 +164,10 @@ class FleetRuntime:
         ok = battery >= self.min_battery
         return live[ok], battery[ok], charging[ok]
 
-    def candidates(
-        self, devices: np.ndarray, times: np.ndarray, battery: np.ndarray, charging: np.ndarray
-    ) -> Candidates:
-        """The check-ins as a policy sees them (per-device traits gathered on demand)."""
+    def traits(self) -> dict[str, np.ndarray]:
+        """Per-device arrays a selection policy may read (indexed by device)."""
         fleet = self.fleet
-        arrays = {
+        return {
             "device_type": fleet.device_type,
             "region": fleet.region,
             "samples": fleet.samples,
@@ -179,7 +175,36 @@ class FleetRuntime:
             "last_participation_s": self.last_participation,
             "participations": self.participations,
         }
-        return Candidates(devices, times, battery, charging, arrays, fleet.type_names, fleet.region_names)
+
+    # ------------------------------------------------------------------ participation
+
+    def accept(self, devices: np.ndarray) -> None:
+        """A round accepted ``devices``: busy until released (no more check-ins)."""
+        self.free_at[devices] = np.inf
+
+    def release(
+        self, devices: np.ndarray, accept_s: np.ndarray, end_rel: np.ndarray, signal_off_at: np.ndarray
+    ) -> None:
+        """``devices`` ended their participation at ``accept_s + end_rel`` (s): they rest for
+        the rounds' ``rest``, their participation count and time move on, and what their tasks
+        showed of the signals is recorded. ``signal_off_at`` is [S, n], the time after
+        acceptance each tracked signal turned off (inf: not tracked)."""
+        ended = accept_s + end_rel
+        self.free_at[devices] = ended + self.config.rounds.rest
+        self.last_participation[devices] = ended
+        self.participations[devices] += 1
+        for s in range(len(SIGNALS)):
+            off_at = signal_off_at[s]
+            tracked = np.isfinite(off_at)
+            if not tracked.any():
+                continue
+            went_off = tracked & (off_at <= end_rel)
+            still_on = tracked & ~went_off
+            if still_on.any():
+                self.signals.record(devices[still_on], s, ended[still_on], np.ones(int(still_on.sum())))
+            if went_off.any():
+                when = accept_s[went_off] + off_at[went_off]
+                self.signals.record(devices[went_off], s, when, np.zeros(int(went_off.sum())))
 
     # ------------------------------------------------------------------ measurement
 

@@ -26,19 +26,17 @@ from typing import Any
 import numpy as np
 import simpy
 
-from .client import CAUSES, resolve_cohort
+from .client import Cohort, resolve_cohort
 from .config import SIGNALS, Config
 from .errors import FleetsimError
-from .events import OUTCOMES, ROUND_STATUS, WASTE_CAUSES, EventLog
-from .policies import RoundView, SelectionPolicy
+from .events import ROUND_STATUS, EventLog, outcome_codes, round_status, waste_codes
+from .policies import Candidates, RoundView, SelectionPolicy
 from .runtime import FleetRuntime
 
 __all__ = ["RoundServer"]
 
-_OUT = {name: i for i, name in enumerate(OUTCOMES)}
-_WASTE = {name: i for i, name in enumerate(WASTE_CAUSES)}
 _STATUS = {name: i for i, name in enumerate(ROUND_STATUS)}
-_CAUSE_TO_WASTE = np.array([_WASTE["used"]] + [_WASTE[c] for c in CAUSES[1:]], dtype=np.int8)
+_UPLOAD = 3  # phase code of the upload (events.PHASES)
 
 
 class RoundServer:
@@ -150,14 +148,14 @@ class RoundServer:
             if devices.size == 0:
                 t = end
                 continue
-            candidates = runtime.candidates(devices, times, battery, charging)
+            candidates = self._candidates(devices, times, battery, charging)
             chosen = np.asarray(policy.choose(candidates, view, rng), dtype=np.int64)
             self._check_choice(chosen, devices, needed, in_round, index, t)
             if chosen.size:
                 chosen.sort()
                 at = times[chosen] if not policy.holds_checkins else np.full(chosen.size, end)
                 chunks.append((devices[chosen], times[chosen], at, battery[chosen], charging[chosen]))
-                runtime.free_at[devices[chosen]] = np.inf  # busy: no more check-ins
+                runtime.accept(devices[chosen])
                 in_round[devices[chosen]] = True
                 np.add.at(by_type, runtime.fleet.device_type[devices[chosen]], 1)
                 needed -= chosen.size
@@ -172,6 +170,14 @@ class RoundServer:
             return empty.astype(np.int64), empty, empty, empty, empty.astype(bool), timeout_at, checkins
         devices, checkin, at, battery, charging = (np.concatenate(parts) for parts in zip(*chunks, strict=True))
         return devices, checkin, at, battery, charging, selected_at, checkins
+
+    def _candidates(
+        self, devices: np.ndarray, times: np.ndarray, battery: np.ndarray, charging: np.ndarray
+    ) -> Candidates:
+        """The check-ins as a policy sees them (per-device traits gathered on demand)."""
+        fleet = self.runtime.fleet
+        return Candidates(devices, times, battery, charging, self.runtime.traits(), fleet.type_names,
+                          fleet.region_names)
 
     def _check_choice(
         self, chosen: np.ndarray, devices: np.ndarray, needed: int, in_round: np.ndarray, index: int, t: float
@@ -209,17 +215,16 @@ class RoundServer:
         """
         runtime = self.runtime
         devices, times = runtime.free_ticks(start, end)
-        ranker = getattr(self.policy, "rank", None)
         key = None
         # A window longer than the check-in period holds several ticks of a device; it is ranked
         # once (at its first tick) and its ticks are looked at together (runtime.eligible).
         repeats = end - start > runtime.checkin_every
         first = np.unique(devices, return_index=True)[1] if repeats else np.arange(devices.size)
         first.sort()
-        if ranker is not None and devices.size:
+        if devices.size:
             d0, t0 = devices[first], times[first]
-            blank = runtime.candidates(d0, t0, np.full(d0.size, np.nan), np.zeros(d0.size, bool))
-            key = ranker(blank, view, rng)
+            blank = self._candidates(d0, t0, np.full(d0.size, np.nan), np.zeros(d0.size, bool))
+            key = self.policy.rank(blank, view, rng)  # None: no ranking (SelectionPolicy.rank)
         if key is None:
             live, battery, charging = runtime.eligible(devices, times)
             return devices[live], times[live], battery, charging
@@ -259,15 +264,58 @@ class RoundServer:
     def _round(self, opened: float) -> float:
         """Run one round from ``opened``; log it; return its close time."""
         rounds = self.config.rounds
-        runtime = self.runtime
-        fleet = runtime.fleet
         index = self.round_index
         self.round_index += 1
         devices, checkin_s, accept_s, battery, charging, selected_at, checkins = self._select(opened, index)
         selected_at, checkins = float(selected_at), int(checkins)
         n = devices.size
         enough = n >= rounds.required_reports
+        cohort = self._resolve(devices, accept_s, checkin_s, charging, battery)
+        report_at = accept_s + np.where(np.isinf(cohort.drop_at), cohort.task_s, np.inf)
+        closed, lost = self._close_at(opened, selected_at, report_at, enough)
 
+        rel_close = closed - accept_s
+        reported = report_at <= closed
+        dropped = ~reported & (cohort.drop_at <= rel_close)
+        working = ~reported & ~dropped
+        # At close a device already uploading finishes (its report is late) or drops out on the way.
+        uploading = working & (cohort.phase_at(rel_close) == _UPLOAD) & (not lost)
+        late = uploading & np.isinf(cohort.drop_at)
+        is_drop = dropped | (uploading & ~late)
+
+        end_rel = np.where(reported | late, cohort.task_s, rel_close)
+        end_rel = np.where(is_drop, cohort.drop_at, end_rel)
+        cause = np.where(is_drop, cohort.cause, 0).astype(np.int8)
+        n_reports = int(reported.sum())
+        status = round_status(lost, enough, n_reports, rounds.required_reports)
+        used = reported & (status == "committed")
+        self._log_participations(
+            index, cohort, end_rel,
+            outcome=outcome_codes(reported, late, is_drop),
+            cause=cause,
+            phase=np.where(is_drop, cohort.phase_at(cohort.drop_at), 0).astype(np.int8),
+            waste_cause=waste_codes(status, late, is_drop, cause, used),
+            used=used,
+        )
+        self.log.add_round(
+            round=index,
+            opened_s=opened,
+            selected_s=float(selected_at),
+            closed_s=float(closed),
+            accepted=n,
+            reports=n_reports,
+            status=_STATUS[status],
+            checkins=int(checkins),
+        )
+        self.runtime.release(devices, accept_s, end_rel, cohort.signal_off_at)
+        return float(closed)
+
+    def _resolve(
+        self, devices: np.ndarray, accept_s: np.ndarray, checkin_s: np.ndarray, charging: np.ndarray,
+        battery: np.ndarray,
+    ) -> Cohort:
+        """The accepted devices' tasks, resolved from their traits (:func:`fleetsim.client.resolve_cohort`)."""
+        fleet = self.runtime.fleet
         arrays = {
             "device_type": fleet.device_type[devices],
             "region": fleet.region[devices],
@@ -281,114 +329,49 @@ class RoundServer:
             "battery_wh": fleet.battery_wh[devices],
         }
         mean_on = self._mean_on[:, arrays["device_type"]]
-        cohort = resolve_cohort(
+        return resolve_cohort(
             self.config, arrays, devices, accept_s, accept_s - checkin_s, charging, battery, mean_on,
-            self.rngs["task"],
-            fleet.type_names, fleet.region_names,
+            self.rngs["task"], fleet.type_names, fleet.region_names,
         )
-        report_at = accept_s + np.where(np.isinf(cohort.drop_at), cohort.task_s, np.inf)
+
+    def _close_at(self, opened: float, selected_at: float, report_at: np.ndarray, enough: bool) -> tuple[float, bool]:
+        """When the round closes (s) and whether an outage cut it: at ``target_reports`` reports
+        or the report deadline, whichever is first (at the selection's end when too few devices
+        were accepted), or at the start of an outage before that."""
+        rounds = self.config.rounds
         if enough:
             deadline_at = selected_at + rounds.report_deadline
             k = rounds.target_reports
-            kth = np.partition(report_at, k - 1)[k - 1] if n >= k else np.inf
+            kth = np.partition(report_at, k - 1)[k - 1] if report_at.size >= k else np.inf
             closed = max(min(deadline_at, kth), selected_at)
         else:
             closed = selected_at  # abandoned when the selection timeout passes
         outage_start = self._next_outage_after(opened)
         lost = bool(outage_start <= closed)
-        if lost:
-            closed = outage_start
+        return (float(outage_start) if lost else float(closed)), lost
 
-        rel_close = closed - accept_s
-        reported = report_at <= closed
-        dropped = ~reported & (cohort.drop_at <= rel_close)
-        working = ~reported & ~dropped
-        uploading = working & (cohort.phase_at(rel_close) == 3) & (not lost)
-        late = uploading & np.isinf(cohort.drop_at)
-        late_drop = uploading & ~late
-
-        end_rel = np.where(reported | late, cohort.task_s, rel_close)
-        end_rel = np.where(dropped | late_drop, cohort.drop_at, end_rel)
-        outcome = np.full(n, _OUT["stopped"], dtype=np.int8)
-        outcome[reported] = _OUT["reported"]
-        outcome[late] = _OUT["late"]
-        outcome[dropped | late_drop] = _OUT["dropout"]
-        is_drop = dropped | late_drop
-        cause = np.where(is_drop, cohort.cause, 0).astype(np.int8)
-        phase = np.where(is_drop, cohort.phase_at(cohort.drop_at), 0).astype(np.int8)
-
-        n_reports = int(reported.sum())
-        if lost:
-            status = "outage"
-        elif not enough:
-            status = "abandoned"
-        elif n_reports >= rounds.required_reports:
-            status = "committed"
-        else:
-            status = "failed"
-        used = reported & (status == "committed")
-        waste = np.full(n, _WASTE["stopped-at-close"], dtype=np.int8)
-        waste[late] = _WASTE["late"]
-        waste[is_drop] = _CAUSE_TO_WASTE[cohort.cause[is_drop]]
-        if status != "committed":
-            round_cause = {"failed": "failed-round", "abandoned": "abandoned-round", "outage": "server-outage"}[status]
-            waste[~is_drop] = _WASTE[round_cause]
-        waste[used] = _WASTE["used"]
-
+    def _log_participations(self, index: int, cohort: Cohort, end_rel: np.ndarray, **columns: np.ndarray) -> None:
+        """Append the round's participations to the log (``columns``: outcome, cause, phase,
+        waste_cause, used); work done is counted up to each participation's end."""
+        fleet = self.runtime.fleet
+        devices, accept_s = cohort.device, cohort.accept_s
         compute_s, bytes_down, bytes_up, energy_wh = cohort.work_until(end_rel)
-        ended = accept_s + end_rel
         self.log.add_participations(
-            round=np.full(n, index),
+            round=np.full(devices.size, index),
             device=devices,
-            device_type=arrays["device_type"],
-            region=arrays["region"],
+            device_type=fleet.device_type[devices],
+            region=fleet.region[devices],
             accepted_s=accept_s,
-            ended_s=ended,
+            ended_s=accept_s + end_rel,
             download_s=cohort.download_s,
             train_s=cohort.train_s,
             upload_s=cohort.upload_s,
-            outcome=outcome,
-            cause=cause,
-            phase=phase,
-            waste_cause=waste,
-            used=used,
             compute_s=compute_s,
             bytes_down=bytes_down,
             bytes_up=bytes_up,
             energy_wh=energy_wh,
-            battery_start_pct=battery,
-            battery_used_pct=100.0 * energy_wh / arrays["battery_wh"],
-            samples=arrays["samples"],
+            battery_start_pct=cohort.battery_start_pct,
+            battery_used_pct=100.0 * energy_wh / cohort.battery_wh,
+            samples=fleet.samples[devices],
+            **columns,
         )
-        self.log.add_round(
-            round=index,
-            opened_s=opened,
-            selected_s=float(selected_at),
-            closed_s=float(closed),
-            accepted=n,
-            reports=n_reports,
-            status=_STATUS[status],
-            checkins=int(checkins),
-        )
-        self._release(cohort, devices, accept_s, end_rel)
-        return float(closed)
-
-    def _release(self, cohort: Any, devices: np.ndarray, accept_s: np.ndarray, end_rel: np.ndarray) -> None:
-        """After the round: rest periods, participation counts, and what is known of signals."""
-        runtime = self.runtime
-        ended = accept_s + end_rel
-        runtime.free_at[devices] = ended + self.config.rounds.rest
-        runtime.last_participation[devices] = ended
-        runtime.participations[devices] += 1
-        for s in range(len(SIGNALS)):
-            off_at = cohort.signal_off_at[s]
-            tracked = np.isfinite(off_at)
-            if not tracked.any():
-                continue
-            went_off = tracked & (off_at <= end_rel)
-            still_on = tracked & ~went_off
-            if still_on.any():
-                runtime.signals.record(devices[still_on], s, ended[still_on], np.ones(int(still_on.sum())))
-            if went_off.any():
-                when = accept_s[went_off] + off_at[went_off]
-                runtime.signals.record(devices[went_off], s, when, np.zeros(int(went_off.sum())))

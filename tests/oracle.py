@@ -300,7 +300,7 @@ class _Oracle:
         padded = math.ceil(int(fleet.samples[i]) / work.batch_size) * work.batch_size
         train_s = padded * work.epochs * float(fleet.sample_cost_s[i])
         up_s = work.upload_bytes * 8.0 / (fleet.up_mbps[i] * 1e6)
-        hazard = work.crash_per_hour / 3600.0
+        hazard = work.crash_rate / 3600.0
         start = env.now
         crash_at = start + rng.expovariate(hazard) if hazard > 0 else _INF
         os_at = start + work.execution_limit

@@ -7,7 +7,7 @@ import pytest
 from typer.testing import CliRunner
 
 import fleetsim
-from fleetsim.cli import app
+from fleetsim.cli.app import app
 from fleetsim.config import example_path
 
 runner = CliRunner()
@@ -91,3 +91,49 @@ def test_policies_lists_every_builtin():
 def test_missing_file_is_one_line(tmp_path):
     result = runner.invoke(app, ["check", str(tmp_path / "nope.yaml")])
     assert result.exit_code == 2 and result.output.startswith("error: ") and "cannot read" in result.output
+
+
+def test_check_stress_validates_a_stress_file_against_the_example_or_a_fleet(tmp_path):
+    good = tmp_path / "stress.yaml"
+    good.write_text("disruptions:\n  - {kind: server-outage, start: 3h, duration: 2h}\n"
+                    "  - {kind: crash-surge, start: 1h, duration: 2h, factor: 3}\n")
+    ok = runner.invoke(app, ["check", "--stress", str(good)])
+    assert ok.exit_code == 0, ok.output
+    assert ok.output.strip() == f"{good}: ok (2 disruptions, checked against {example_path()})"
+    fleet = tmp_path / "fleet.yaml"
+    fleet.write_text(example_path().read_text(encoding="utf-8"), encoding="utf-8")
+    assert runner.invoke(app, ["check", "--stress", str(good), str(fleet)]).exit_code == 0
+    bad = tmp_path / "bad.yaml"
+    bad.write_text("disruptions:\n  - kind: crash-surge\n    start: 1h\n    duration: 2h\n    factor: -3\n")
+    refused = runner.invoke(app, ["check", "--stress", str(bad)])
+    lines = refused.output.strip().splitlines()
+    assert refused.exit_code == 2 and len(lines) == 1, refused.output
+    assert lines[0].startswith(f"error: {bad}: disruptions.0.factor")
+    # A device type the fleet does not have is refused naming the stress file.
+    other = tmp_path / "other.yaml"
+    other.write_text("disruptions:\n  - {kind: crash-surge, start: 1h, duration: 2h, factor: 3, "
+                     "device_types: [no-such-device]}\n")
+    unknown = runner.invoke(app, ["check", "--stress", str(other)])
+    assert unknown.exit_code == 2 and unknown.output.startswith(f"error: {other}: disruptions.0")
+
+
+def test_check_without_a_file_or_stress_is_a_usage_line():
+    result = runner.invoke(app, ["check"])
+    assert result.exit_code == 2 and result.output == "error: file: missing; see --help\n"
+
+
+def test_first_seed_out_of_range_is_one_line(tmp_path):
+    result = runner.invoke(app, ["sweep", "--first-seed", "-1", "--vary", "rounds.over_selection=1.1",
+                                 "--out", str(tmp_path / "s")])
+    assert result.exit_code == 2
+    assert result.output == "error: --first-seed: expected a whole number from 0 to 2**63 - 1 (got -1)\n"
+    assert not (tmp_path / "s").exists()
+
+
+def test_summary_names_the_fleet_file_by_its_absolute_path(tmp_path, monkeypatch):
+    fleet = tmp_path / "f.yaml"
+    fleet.write_text(example_path().read_text(encoding="utf-8"), encoding="utf-8")
+    monkeypatch.chdir(tmp_path)
+    result = runner.invoke(app, ["run", "f.yaml", "--out", "run", "--devices", "800", "--days", "0.25"])
+    assert result.exit_code == 0, result.output
+    assert json.loads((tmp_path / "run" / "summary.json").read_text())["fleet_file"] == str(fleet.resolve())

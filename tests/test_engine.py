@@ -143,8 +143,8 @@ def test_network_slowdown_lengthens_downloads_where_and_when_it_applies():
 
 
 def test_crash_surge_raises_crash_dropouts():
-    calm = run("workload.crash_per_hour=0.2")
-    surge = run("workload.crash_per_hour=0.2", "disruptions=[{kind: crash-surge, start: 0s, duration: 1d, factor: 10}]")
+    calm = run("workload.crash_rate=0.2/h")
+    surge = run("workload.crash_rate=0.2/h", "disruptions=[{kind: crash-surge, start: 0s, duration: 1d, factor: 10}]")
     def crash_share(r):
         d = r.summary["participations"]["dropouts_by_cause"].get("crash", 0)
         return d / r.summary["participations"]["accepted"]

@@ -45,7 +45,7 @@ def scenarios(draw: st.DrawFn) -> tuple[list[str], int]:
         f"rounds.rest={draw(st.sampled_from([0, 30, 300, 1800, 3600]))}s",
         f"workload.requires=[{', '.join(requires)}]",
         f"workload.min_battery={draw(st.sampled_from([0, 20, 50]))}",
-        f"workload.crash_per_hour={draw(st.sampled_from([0, 0.5, 3]))}",
+        f"workload.crash_rate={draw(st.sampled_from([0, 0.5, 3]))}",
     ]
     return overrides, draw(st.integers(0, 10_000))
 

@@ -55,7 +55,7 @@ DIURNAL = [
     "rounds.target_reports=12",
     "rounds.min_reports=9",
     "rounds.rest=2h",
-    "workload.crash_per_hour=1",
+    "workload.crash_rate=1/h",
     "workload.execution_limit=5m",
 ]
 
@@ -70,7 +70,7 @@ BATTERY = [
     "rounds.rest=2h",
     "workload.requires=[idle, unmetered]",
     "workload.min_battery=40",
-] + [f"fleet.device_types.{name}.train_power_w={watts}" for name, watts in zip(_TYPES, (12, 14, 16, 25), strict=True)]
+] + [f"fleet.device_types.{name}.train_power={watts}W" for name, watts in zip(_TYPES, (12, 14, 16, 25), strict=True)]
 
 
 def config_of(overrides: list[str]) -> fleetsim.Config:
@@ -409,7 +409,7 @@ def wrong_engine(base: list[str], change: list[str]) -> Pooled:
 
 
 def test_cause_comparison_detects_a_doubled_crash_hazard(diurnal_oracle):
-    wrong = wrong_engine(DIURNAL, ["workload.crash_per_hour=2"])
+    wrong = wrong_engine(DIURNAL, ["workload.crash_rate=2/h"])
     assert shares_p(wrong, diurnal_oracle, "cause") < ALPHA
 
 
@@ -434,7 +434,7 @@ def test_status_comparison_detects_a_halved_rest_period(diurnal_oracle):
 
 
 def test_battery_comparison_detects_a_smaller_battery(battery_oracle):
-    wrong = wrong_engine(BATTERY, [f"fleet.device_types.{t}.battery_wh=7" for t in _TYPES])
+    wrong = wrong_engine(BATTERY, [f"fleet.device_types.{t}.battery_capacity=7Wh" for t in _TYPES])
     assert shares_p(wrong, battery_oracle, "cause") < ALPHA
 
 

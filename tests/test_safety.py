@@ -592,3 +592,19 @@ def test_the_watch_thread_alone_ends_an_orphan(tmp_path):
         child.wait()
         child.stdout.close()
     assert _wait_until_gone([grandchild], within_s=3.0) == []
+
+
+def test_single_files_are_readable_like_any_other_output_and_honour_the_umask(tmp_path):
+    # atomic_text writes through mkstemp, which makes private (0600) files; outputs get the
+    # mode open() would give them: 0666 less the umask (POSIX open(2), from memory).
+    from fleetsim.output import atomic_text
+
+    old = os.umask(0o022)
+    try:
+        atomic_text(tmp_path / "study.json", "{}\n")
+        os.umask(0o077)
+        atomic_text(tmp_path / "private.json", "{}\n")
+    finally:
+        os.umask(old)
+    assert (tmp_path / "study.json").stat().st_mode & 0o777 == 0o644
+    assert (tmp_path / "private.json").stat().st_mode & 0o777 == 0o600

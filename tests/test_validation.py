@@ -52,8 +52,8 @@ FIXED_TASK = [
     "workload.epochs=1",
     *every_type("samples", 300),
     *every_type("sample_cost", "1s"),
-    *every_type("down_mbps", 8),
-    *every_type("up_mbps", 8),
+    *every_type("download_rate", "8Mbit/s"),
+    *every_type("upload_rate", "8Mbit/s"),
 ]
 FIXED_TASK_S = 302.0
 
@@ -68,7 +68,7 @@ CRASH_PER_HOUR = 2.0
 BINOMIAL = FIXED_TASK + [
     "fleet.devices=5000",
     "horizon.duration=2d",
-    f"workload.crash_per_hour={CRASH_PER_HOUR}",
+    f"workload.crash_rate={CRASH_PER_HOUR}/h",
     "rounds.target_reports=17",
     "rounds.min_reports=17",
     "rounds.over_selection=1.17",  # ceil(17 * 1.17) = 20 accepted
@@ -153,15 +153,15 @@ ORDER = [
     "workload.min_battery=0",
     "workload.memory_needed=0",
     "workload.execution_limit=1d",
-    "workload.crash_per_hour=0",
+    "workload.crash_rate=0",
     "workload.model_size=1MB",
     "workload.update_size=1MB",
     "workload.batch_size=1",
     "workload.epochs=1",
     *every_type("samples", 100),
     *every_type("sample_cost", f"{{median: {ORDER_MEDIAN_COST_S}s, spread: {ORDER_SPREAD}}}"),
-    *every_type("down_mbps", 8),
-    *every_type("up_mbps", 8),
+    *every_type("download_rate", "8Mbit/s"),
+    *every_type("upload_rate", "8Mbit/s"),
     "rounds.target_reports=30",
     "rounds.min_reports=30",
     "rounds.over_selection=1.33",  # ceil(39.9) = 40 accepted
@@ -494,7 +494,7 @@ ERLANG = FIXED_TASK + [
     f"fleet.devices={ERLANG_DEVICES}",
     "horizon.duration=1d",
     f"workload.min_battery={ERLANG_MIN}",
-    "workload.crash_per_hour=0",
+    "workload.crash_rate=0",
     *every_type("samples", 50),
     *every_type("battery_level.charging", "{mean: 50, sd: 20}"),
     *every_type("battery_level.unplugged", "{mean: 50, sd: 20}"),

@@ -1,23 +1,12 @@
-"""Writing a run's outputs to a folder, all or nothing.
+"""Output folders: the marker, the checks on a target, the atomic swap and leftovers.
 
-Layout of a run folder::
-
-    summary.json        headline figures (docs/metrics.md)
-    config.json         the validated configuration the run used
-    events.parquet      the event log: one row per device participation
-    rounds.parquet      one row per round
-    census.parquet      eligible devices counted every 15 minutes by type and region
-    tables/*.csv        every derived table
-    .fleetsim-output    the marker: {"kind": "run", "fleetsim": version, "created": UTC time}
-
-Files are written into a fresh sibling folder (``.NAME.partial-*``) that replaces the target
-only once all of them are complete, so an interrupted or failed write leaves no half-written
-folder. Nothing fleetsim did not write is ever replaced: every folder it writes (run, sweep
-and comparison folders) carries the marker file :data:`MARKER`; a target that exists, is not
+Nothing fleetsim did not write is ever replaced: every folder it writes (run, sweep and
+comparison folders) carries the marker file :data:`MARKER`; a target that exists, is not
 empty and has no marker is refused, and replacing an earlier output needs ``force``
-(``--force``). :func:`check_target` holds these rules; :func:`clean_leftovers` removes the
-temporary folders a killed process left beside a target. Every CSV goes through
-:func:`write_csv`, which escapes text cells a spreadsheet would read as a formula.
+(``--force``). :func:`check_target` holds these rules. A folder is filled under a fresh
+sibling name (``.NAME.partial-*``) and swapped in only once complete
+(:func:`atomic_folder`); :func:`clean_leftovers` removes the temporary folders a killed
+process left beside a target.
 """
 
 from __future__ import annotations
@@ -25,7 +14,6 @@ from __future__ import annotations
 import ctypes
 import errno
 import functools
-import hashlib
 import json
 import os
 import re
@@ -36,23 +24,15 @@ import time
 from collections.abc import Callable, Iterable
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
-import pandas as pd
-
-from .errors import FleetsimError
-
-if TYPE_CHECKING:
-    from .engine import Result
+from ..errors import FleetsimError
+from .files import _reason, atomic_text
 
 __all__ = [
-    "write_run", "atomic_folder", "atomic_text", "atomic_save", "event_frame", "read_summary", "PARTIAL",
-    "MARKER", "read_marker", "check_target", "claim_study", "clean_leftovers", "safe_name", "inside",
-    "escape_cell", "unescape_cell", "csv_frame", "unescape_frame", "write_csv",
+    "MARKER", "KINDS", "atomic_folder", "check_target", "claim_study", "clean_leftovers", "marker_text",
+    "read_marker",
 ]
-
-PARTIAL = ".partial-"
-"""Prefix of temporary files written beside their target (left over only by a killed process)."""
 
 MARKER = ".fleetsim-output"
 """Name of the marker file in every folder fleetsim writes: JSON with kind, version and time."""
@@ -82,28 +62,9 @@ if hasattr(os, "register_at_fork"):
 _LEFTOVER = re.compile(r"\.(partial|old)-[a-z0-9_]{8}")  # after ".NAME"; tempfile.mkdtemp's 8 characters
 
 
-def event_frame(result: Result) -> pd.DataFrame:
-    """The event log (already labelled, ``Result.participations``) with ISO 8601 UTC timestamps."""
-    parts = result.participations
-    start = pd.Timestamp(result.config.horizon.start)
-    frame = parts.copy()
-    frame.insert(5, "accepted_utc", start + pd.to_timedelta(parts["accepted_s"], unit="s"))
-    frame.insert(7, "ended_utc", start + pd.to_timedelta(parts["ended_s"], unit="s"))
-    return frame
-
-
-# ------------------------------------------------------------------------- markers and targets
-
-
-def _reason(exc: BaseException) -> str:
-    """A one-line reason for an OS error (pyarrow's carry only a message)."""
-    text = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc) or type(exc).__name__
-    return " ".join(text.split())
-
-
 def marker_text(kind: str) -> str:
     """The marker file's JSON for a folder of ``kind`` (see :data:`KINDS`)."""
-    from . import __version__
+    from .. import __version__
 
     created = datetime.now(timezone.utc).isoformat(timespec="seconds")
     return json.dumps({"kind": kind, "fleetsim": __version__, "created": created}) + "\n"
@@ -408,184 +369,3 @@ def claim_study(
     if previous is not None:
         _remove(previous)
     return where
-
-
-# ------------------------------------------------------------------------- names and paths
-
-_UNSAFE = re.compile(r"[^A-Za-z0-9._-]")
-SAFE_NAME_LENGTH = 100
-"""Longest file name :func:`safe_name` returns (before any extension)."""
-
-
-def safe_name(text: str, taken: set[str] | None = None, limit: int = SAFE_NAME_LENGTH) -> str:
-    """A file name for ``text`` made of ASCII letters, digits, ``-``, ``_`` and ``.`` only, not
-    starting with a dot or a dash, at most ``limit`` characters.
-
-    A name that had to change (or was too long) ends in ``-`` and 10 hex digits of its SHA-256,
-    so two names never end up alike by accident. With ``taken`` (lower-case names already
-    used in the folder) the result is also unique there, ignoring case, and is added to it.
-    """
-    slug = _UNSAFE.sub("_", text).lstrip(".-")
-    if not slug or slug != text or len(slug) > limit:
-        digest = hashlib.sha256(text.encode("utf-8", "surrogatepass")).hexdigest()[:10]
-        slug = f"{slug[: limit - 11]}-{digest}" if slug else digest
-    if taken is not None:
-        stem, n = slug, 2
-        while slug.casefold() in taken:
-            slug = f"{stem[: limit - 6]}-{n}"
-            n += 1
-        taken.add(slug.casefold())
-    return slug
-
-
-def inside(root: str | Path, path: str | Path) -> Path:
-    """Return ``path`` if, symbolic links resolved, it lies inside ``root``; else raise FleetsimError."""
-    base, full = Path(root).resolve(), Path(path).resolve()
-    if base not in full.parents:
-        raise FleetsimError(f"{path}: would be written outside {root}; refused")
-    return Path(path)
-
-
-# ------------------------------------------------------------------------------------- CSV
-
-_FORMULA_START = frozenset("=+-@\t\r")
-"""First characters a spreadsheet reads as the start of a formula (OWASP CSV injection, common practice)."""
-
-
-def escape_cell(value: Any) -> Any:
-    """``value`` with a ``'`` put in front if it is text a spreadsheet would take for a formula.
-
-    Text already starting with ``'`` gets one more, so :func:`unescape_cell` gives back the
-    exact original. Anything that is not text (a negative number, say) is returned as is.
-    """
-    if isinstance(value, str) and value[:1] and (value[0] in _FORMULA_START or value[0] == "'"):
-        return "'" + value
-    return value
-
-
-def unescape_cell(value: Any) -> Any:
-    """The inverse of :func:`escape_cell` for a text cell read back from a fleetsim CSV."""
-    if isinstance(value, str) and value.startswith("'"):
-        return value[1:]
-    return value
-
-
-def csv_frame(frame: pd.DataFrame) -> pd.DataFrame:
-    """A copy of ``frame`` whose text cells and column names are passed through :func:`escape_cell`."""
-    out = frame.copy()
-    for position in range(out.shape[1]):
-        column = out.iloc[:, position]
-        if isinstance(column.dtype, pd.CategoricalDtype):
-            if column.cat.categories.dtype == object:
-                out.isetitem(position, column.cat.rename_categories([escape_cell(c) for c in column.cat.categories]))
-        elif column.dtype == object or pd.api.types.is_string_dtype(column.dtype):
-            out.isetitem(position, column.map(escape_cell))
-    out.columns = [escape_cell(name) for name in out.columns]
-    return out
-
-
-def unescape_frame(frame: pd.DataFrame) -> pd.DataFrame:
-    """The inverse of :func:`csv_frame` for a table read back with pandas (text columns as str)."""
-    out = frame.copy()
-    for position in range(out.shape[1]):
-        if out.iloc[:, position].dtype == object:
-            out.isetitem(position, out.iloc[:, position].map(unescape_cell))
-    out.columns = [unescape_cell(name) for name in out.columns]
-    return out
-
-
-def write_csv(frame: pd.DataFrame, path: str | Path) -> None:
-    """Write ``frame`` (no index) as CSV with formula-like text escaped; every CSV fleetsim writes
-    goes through here. Parquet files keep the raw values."""
-    csv_frame(frame).to_csv(path, index=False)
-
-
-# ------------------------------------------------------------------------------------- files
-
-
-def atomic_text(path: Path, text: str) -> None:
-    """Write ``text`` to ``path`` through a flushed temporary file beside it and ``os.replace``.
-
-    Raises FleetsimError if the folder cannot be written (the target is then unchanged).
-    """
-    path = Path(path)
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        handle, tmp = tempfile.mkstemp(prefix=f"{PARTIAL}{path.name}.", dir=path.parent)
-    except OSError as exc:
-        raise FleetsimError(f"{path.parent}: cannot write ({exc.strerror or exc})") from None
-    try:
-        with os.fdopen(handle, "w", encoding="utf-8") as stream:
-            stream.write(text)
-            stream.flush()
-            os.fsync(stream.fileno())
-        os.replace(tmp, path)
-    except BaseException as exc:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        if isinstance(exc, OSError):
-            raise FleetsimError(f"{path}: cannot write ({_reason(exc)})") from None
-        raise
-
-
-def atomic_save(path: Path, save: Callable[[Path], object]) -> None:
-    """Let ``save(tmp_path)`` write a file (e.g. a plot or Parquet), then move it to ``path``.
-
-    The temporary file sits beside ``path``, so the move is an atomic rename. Raises
-    FleetsimError for an OS error (the target is then unchanged).
-    """
-    path = Path(path)
-    tmp = path.with_name(f"{PARTIAL}{os.getpid()}.{path.name}")
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        save(tmp)
-        os.replace(tmp, path)
-    except BaseException as exc:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        if isinstance(exc, OSError):
-            raise FleetsimError(f"{path}: cannot write ({_reason(exc)})") from None
-        raise
-
-
-def write_run(
-    result: Result, out: str | Path, *, force: bool = False, inputs: Iterable[str | Path] = (),
-    label: str | None = None, notice: Callable[[str], None] | None = None,
-) -> Path:
-    """Write every output of ``result`` to the folder ``out``, all or nothing.
-
-    ``out`` may be new or empty; an earlier fleetsim output there is replaced only with
-    ``force``. ``inputs``, ``label`` and ``notice`` as for :func:`atomic_folder`. Raises
-    FleetsimError (see :func:`check_target`) with nothing touched.
-    """
-
-    def fill(folder: Path) -> None:
-        (folder / "summary.json").write_text(json.dumps(result.summary, indent=2) + "\n", encoding="utf-8")
-        (folder / "config.json").write_text(
-            json.dumps(result.config.model_dump(mode="json"), indent=2) + "\n", encoding="utf-8"
-        )
-        event_frame(result).to_parquet(folder / "events.parquet", index=False)
-        result.tables["rounds"].to_parquet(folder / "rounds.parquet", index=False)
-        result.census.to_parquet(folder / "census.parquet", index=False)
-        tables = folder / "tables"
-        tables.mkdir()
-        taken: set[str] = set()
-        for name, table in result.tables.items():
-            write_csv(table, inside(folder, tables / f"{safe_name(name, taken)}.csv"))
-
-    return atomic_folder(Path(out), fill, kind="run", force=force, inputs=inputs, label=label, notice=notice)
-
-
-def read_summary(run_dir: str | Path) -> dict:
-    """Read ``summary.json`` of a run folder; raises FleetsimError if it is missing or broken."""
-    path = Path(run_dir) / "summary.json"
-    try:
-        return json.loads(path.read_text(encoding="utf-8"))
-    except OSError as exc:
-        raise FleetsimError(f"{path}: cannot read ({exc.strerror or exc}); is {run_dir} a run folder?") from None
-    except json.JSONDecodeError as exc:
-        raise FleetsimError(f"{path}: not valid JSON ({exc.msg} at line {exc.lineno})") from None

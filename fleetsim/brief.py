@@ -1,0 +1,78 @@
+"""Short run summaries from a run's ``summary`` mapping: plain text for the terminal and
+compact HTML for notebooks.
+
+Both read only the JSON-ready summary (docs/metrics.md), so they work the same on a fresh
+:class:`fleetsim.Result` and on a ``summary.json`` read back from a run folder.
+"""
+
+from __future__ import annotations
+
+import html
+from typing import Any
+
+__all__ = ["render_summary", "summary_html"]
+
+
+def _pct(x: Any) -> str:
+    """A fraction as a percentage with one decimal; ``n/a`` for None."""
+    return "n/a" if x is None else f"{100 * x:.1f}%"
+
+
+def render_summary(summary: dict[str, Any]) -> str:
+    """The short plain-text summary ``fleetsim run`` prints."""
+    r, w, b = summary["rounds"], summary["waste"], summary["bias"]
+    d = r["duration_s"]
+    lines = [
+        f"{summary['scenario']}",
+        f"  seed {summary['seed']}, config {summary['config_hash']}, {summary['devices']:,} devices, "
+        f"{summary['simulated_hours']:g} simulated hours from {summary['horizon_start']}, policy {summary['policy']}",
+        f"rounds: {r['committed']} committed of {r['attempted']} ({r['committed_per_hour']:.2f} per hour); "
+        f"{r['failed']} failed, {r['abandoned']} abandoned"
+        + (f", {r['outage']} lost to outages" if r["outage"] else ""),
+    ]
+    if d["p50"] is not None:
+        lines.append(f"  committed round duration p50 {d['p50']:.0f}s, p90 {d['p90']:.0f}s, p99 {d['p99']:.0f}s")
+    lines.append(
+        f"straggler waste: {_pct(w['compute_fraction'])} of compute, {_pct(w['bytes_fraction'])} of bytes, "
+        f"{_pct(w['energy_fraction'])} of energy"
+    )
+    causes = sorted(w["by_cause"].items(), key=lambda kv: -kv[1]["compute_s"])[:4]
+    if causes:
+        total = sum(v["compute_s"] for v in w["by_cause"].values()) or 1.0
+        shares = ", ".join(f"{k} {100 * v['compute_s'] / total:.0f}%" for k, v in causes)
+        lines.append(f"  largest causes (compute): {shares}")
+    gini = "n/a" if b["gini"] is None else f"{b['gini']:.2f}"
+    p_value = b["chi_square_p"]
+    chi_p = "n/a" if p_value is None else ("< 1e-300" if p_value == 0 else f"{p_value:.3g}")
+    lines.append(f"participation: coverage {_pct(b['coverage'])} of devices, Gini {gini}, chi-square p {chi_p}")
+    lines.append(f"  {'device type':<18} {'fleet':>7} {'eligible':>9} {'reports':>8} {'weight':>7} {'ratio':>6}")
+    for name, v in b["by_device_type"].items():
+        ratio = "n/a" if v["representation_ratio"] is None else f"{v['representation_ratio']:.2f}"
+        lines.append(
+            f"  {name:<18} {_pct(v['fleet_share']):>7} {_pct(v['eligible_share']):>9} "
+            f"{_pct(v['report_share']):>8} {_pct(v['weight_share']):>7} {ratio:>6}"
+        )
+    lines.append(f"caution: {summary['caution']}")
+    return "\n".join(lines)
+
+
+def summary_html(summary: dict[str, Any]) -> str:
+    """A compact HTML summary (notebooks render it); names are escaped, never markup."""
+    s = summary
+    r, w, b = s["rounds"], s["waste"], s["bias"]
+    rows = "".join(
+        f"<tr><td>{html.escape(name)}</td><td>{_pct(v['fleet_share'])}</td><td>{_pct(v['report_share'])}</td>"
+        f"<td>{'n/a' if v['representation_ratio'] is None else format(v['representation_ratio'], '.2f')}</td></tr>"
+        for name, v in b["by_device_type"].items()
+    )
+    return (
+        "<div class='fleetsim-summary'>"
+        f"<b>{html.escape(s['scenario'])}</b> &middot; seed {s['seed']} &middot; config {s['config_hash']} "
+        f"&middot; {s['devices']:,} devices &middot; {s['simulated_hours']:g} h<br>"
+        f"rounds committed {r['committed']} of {r['attempted']} ({r['committed_per_hour']:.2f}/h); "
+        f"failed {r['failed']}, abandoned {r['abandoned']}<br>"
+        f"straggler waste: compute {_pct(w['compute_fraction'])}, bytes {_pct(w['bytes_fraction'])}, "
+        f"energy {_pct(w['energy_fraction'])}; coverage {_pct(b['coverage'])}<br>"
+        "<table><tr><th>device type</th><th>fleet share</th><th>report share</th><th>ratio</th></tr>"
+        f"{rows}</table><small>{html.escape(s['caution'])}</small></div>"
+    )

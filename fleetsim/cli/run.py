@@ -1,0 +1,113 @@
+"""The ``run``, ``check``, ``schema`` and ``policies`` commands.
+
+``check`` and ``schema`` read only the fleet-file model: the simulation, the output writer
+and their table libraries are imported inside ``run``, so these commands start at once.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import typer
+
+from ..config import config_schema, example_path
+from ..errors import ConfigError, FleetsimError
+from .console import FileArg, SetOpt, fail, progress_bar, read_config, seed_option
+
+__all__ = ["run", "check", "schema", "policies"]
+
+
+def run(
+    file: Path | None = FileArg,
+    out: Path = typer.Option(
+        Path("out"), "--out", "-o",
+        help="Output folder: a new or empty one, or an earlier fleetsim output with --force.",
+    ),
+    seed: int = seed_option(0, "--seed", "Seed of every random stream."),
+    days: float | None = typer.Option(None, "--days", help="Horizon length in days (overrides the file)."),
+    devices: int | None = typer.Option(None, "--devices", help="Fleet size (overrides the file)."),
+    overrides: list[str] = SetOpt,
+    report: bool = typer.Option(False, "--report", help="Also write report.html and report.md."),
+    force: bool = typer.Option(
+        False, "--force", help="Replace an earlier fleetsim output at --out (never a folder fleetsim did not write)."
+    ),
+) -> None:
+    """Simulate the fleet file and write summary.json, events.parquet and tables/ to --out."""
+    from ..brief import render_summary
+    from ..engine import simulate
+    from ..output import check_target, write_run
+
+    try:
+        config = read_config(file, overrides, devices, days)
+        source = file if file is not None else example_path()
+        label = f"--out {out}"
+        check_target(out, "run", force, [source], label)  # refuse before simulating, not after
+        with progress_bar(config.horizon.duration, "simulating") as tick:
+            result = simulate(config, seed=seed, on_progress=tick)
+        result.source = str(source.resolve())  # absolute: the summary names the file wherever it is read
+        write_run(result, out, force=force, inputs=[source], label=label,
+                  notice=lambda line: typer.echo(line, err=True))
+        if report:
+            from ..report import write_report
+
+            write_report(out)
+    except FleetsimError as exc:
+        fail(exc)
+    typer.echo(render_summary(result.summary))
+    typer.echo(f"wrote {out}/summary.json, events.parquet, tables/" + (", report.html, report.md" if report else ""))
+
+
+def check(
+    file: Path | None = typer.Argument(
+        None, help="Fleet file (YAML); with --stress, the fleet to check it against (default: the bundled example).",
+        show_default=False,
+    ),
+    overrides: list[str] = SetOpt,
+    stress: Path | None = typer.Option(
+        None, "--stress", help="Check this stress file (a 'disruptions:' list) against the fleet file instead."
+    ),
+) -> None:
+    """Validate a fleet file (or a stress file with --stress): exit 0, or one line per problem and exit 2."""
+    try:
+        if stress is not None:
+            _check_stress(stress, file, overrides)
+            return
+        if file is None:
+            raise ConfigError(["file: missing; see --help"])
+        config = read_config(file, overrides)
+    except FleetsimError as exc:
+        fail(exc)
+    fleet = config.fleet
+    typer.echo(
+        f"{file}: ok ({fleet.devices:,} devices, {len(fleet.device_types)} device types, "
+        f"{len(fleet.regions)} regions, policy {config.selection.policy})"
+    )
+
+
+def _check_stress(stress: Path, file: Path | None, overrides: list[str]) -> None:
+    """Validate the stress file's disruptions against the fleet file (default: the bundled
+    example), alone and added to the fleet's own; print one ``ok`` line. Raises ConfigError."""
+    from ..study.settings import FleetFile  # the study's reader of stress files, the one place of its rules
+
+    fleet = file if file is not None else example_path()
+    read_config(fleet, overrides)  # the fleet file's own problems, worded as for check FILE
+    base = FleetFile.read(fleet, overrides)
+    stressed = base.with_stress(stress)
+    stressed.config()  # the stress events added to the fleet's own disruptions still validate
+    count = len(stressed.raw["disruptions"]) - len(base.raw.get("disruptions") or [])
+    typer.echo(f"{stress}: ok ({count} disruption{'s' if count != 1 else ''}, checked against {fleet})")
+
+
+def schema() -> None:
+    """Print the JSON Schema of the fleet file format."""
+    typer.echo(json.dumps(config_schema(), indent=2))
+
+
+def policies() -> None:
+    """List the built-in selection policies."""
+    from ..policies import BUILTIN_POLICIES
+
+    for name, cls in BUILTIN_POLICIES.items():
+        doc = (cls.__doc__ or "").strip().split("\n\n")[0].replace("\n", " ")
+        typer.echo(f"{name:<14} {' '.join(doc.split())}")
