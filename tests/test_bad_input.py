@@ -155,7 +155,8 @@ DURATIONS = [
 SIZES = [("workload", "model_size"), ("workload", "memory_needed"), ("workload", "update_size"),
          ("fleet", "device_types", "tablet", "memory", "median")]
 DISRUPTION = [("disruptions", 0, "factor"), ("disruptions", 0, "shift_hours"), ("disruptions", 0, "start")]
-OPTIONAL = {("horizon", "warmup"), ("rounds", "min_reports"), ("workload", "update_size")}
+OPTIONAL = {("horizon", "warmup"), ("rounds", "min_reports"), ("workload", "update_size"),
+            ("workload", "execution_limit")}  # null: no limit
 ALL_LEAVES = NUMBERS + QUANTITIES + DURATIONS + SIZES + DISRUPTION
 
 
