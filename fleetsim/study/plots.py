@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import math
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import Any
 
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
@@ -16,13 +16,10 @@ from matplotlib.figure import Figure
 
 from .table import WORST_REPRESENTATION, direction_of
 
-if TYPE_CHECKING:
-    from .sweep import SweepResult
-
 __all__ = ["frontier_plot", "heat_map"]
 
 
-def _stats(result: SweepResult, metric: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _stats(result: Any, metric: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Mean, low and high of ``metric`` per cell, in cell order."""
     rows = result.cell_means[result.cell_means["metric"] == metric].set_index("cell")
     cells = [c.index for c in result.grid]
@@ -35,7 +32,7 @@ def _errors(mean: np.ndarray, low: np.ndarray, high: np.ndarray) -> np.ndarray:
     return np.nan_to_num(np.vstack([mean - low, high - mean]), nan=0.0)
 
 
-def frontier_plot(result: SweepResult, path: Path, fmt: str = "png") -> None:
+def frontier_plot(result: Any, path: Path, fmt: str = "png") -> None:
     """Committed rounds per hour (x) against compute waste fraction (y) for every cell, coloured
     by worst representation; front cells outlined and numbered, the recommendation starred.
     Bars are 95% intervals across seeds."""
@@ -83,14 +80,14 @@ def _fit_to_means(ax: object, x: np.ndarray, y: np.ndarray) -> None:
         setter(low - pad, high + pad)
 
 
-def _slice(result: SweepResult) -> dict[str, object]:
+def _slice(result: Any) -> dict[str, object]:
     """Values of the axes beyond the first two: those of the recommended cell (else cell 0)."""
     chosen = result.recommendation.cell if result.recommendation.cell is not None else result.grid[0].index
     cell = next(c for c in result.grid if c.index == chosen)
     return dict(cell.settings[2:])
 
 
-def heat_map(result: SweepResult, metric: str, path: Path, fmt: str = "png") -> None:
+def heat_map(result: Any, metric: str, path: Path, fmt: str = "png") -> None:
     """Mean of ``metric`` over the first varied key (columns) and the second (rows).
 
     With one varied key the map is a single row; with more than two, the others are held at

@@ -146,7 +146,7 @@ def recommend(
     limits: list[Limit],
     front: set[int] | None = None,
 ) -> Recommendation:
-    """Pick a cell by the rule in the module docstring.
+    """(Long because it reads one study's steps in order: splitting it would scatter them.) Pick a cell by the rule in the module docstring.
 
     ``cells``: one row per cell with columns ``cell``, ``label`` and the mean of each metric
     (named as the metric); ``runs``: one row per cell and seed with ``cell``, ``seed`` and the

@@ -101,7 +101,7 @@ def run_sweep(
     folder: str | Path | None = None,
     progress: Progress | None = None,
 ) -> SweepResult:
-    """Run every cell of the grid under every seed and summarise.
+    """(Long because it reads one study's steps in order: splitting it would scatter them.) Run every cell of the grid under every seed and summarise.
 
     ``folder``: the study folder; finished runs are saved under ``folder/cells`` as they end
     and reused when the sweep runs again. Metric names in ``objective`` and ``limits`` may be
