@@ -18,6 +18,13 @@ def _pct(x: Any) -> str:
     return "n/a" if x is None else f"{100 * x:.1f}%"
 
 
+def _ended_by(ended_by: dict[str, int]) -> str:
+    """The rounds that did not commit, by what ended them (server outages only when there were some)."""
+    return (f"{ended_by['selection_timeout']} ended by the selection timeout, "
+            f"{ended_by['report_deadline']} by the report deadline"
+            + (f", {ended_by['server_outage']} by a server outage" if ended_by["server_outage"] else ""))
+
+
 def render_summary(summary: dict[str, Any]) -> str:
     """The short plain-text summary ``fleetsim run`` prints."""
     r, w, b = summary["rounds"], summary["waste"], summary["bias"]
@@ -27,8 +34,7 @@ def render_summary(summary: dict[str, Any]) -> str:
         f"  seed {summary['seed']}, config {summary['config_hash']}, {summary['devices']:,} devices, "
         f"{summary['simulated_hours']:g} simulated hours from {summary['horizon_start']}, policy {summary['policy']}",
         f"rounds: {r['committed']} committed of {r['attempted']} ({r['committed_per_hour']:.2f} per hour); "
-        f"{r['failed']} failed, {r['abandoned']} abandoned"
-        + (f", {r['outage']} lost to outages" if r["outage"] else ""),
+        + _ended_by(r["ended_by"]),
     ]
     if d["p50"] is not None:
         lines.append(f"  committed round duration p50 {d['p50']:.0f}s, p90 {d['p90']:.0f}s, p99 {d['p99']:.0f}s")
@@ -39,12 +45,13 @@ def render_summary(summary: dict[str, Any]) -> str:
     causes = sorted(w["by_cause"].items(), key=lambda kv: -kv[1]["compute_s"])[:4]
     if causes:
         total = sum(v["compute_s"] for v in w["by_cause"].values()) or 1.0
-        shares = ", ".join(f"{k} {100 * v['compute_s'] / total:.0f}%" for k, v in causes)
+        shares = ", ".join(f"{k.replace('_', '-')} {100 * v['compute_s'] / total:.0f}%" for k, v in causes)
         lines.append(f"  largest causes (compute): {shares}")
     gini = "n/a" if b["gini"] is None else f"{b['gini']:.2f}"
-    p_value = b["chi_square_p"]
+    p_value = b["chi_square_device_type_p"]
     chi_p = "n/a" if p_value is None else ("< 1e-300" if p_value == 0 else f"{p_value:.3g}")
-    lines.append(f"participation: coverage {_pct(b['coverage'])} of devices, Gini {gini}, chi-square p {chi_p}")
+    lines.append(f"participation: coverage {_pct(b['coverage'])} of devices, Gini {gini}, "
+                 f"chi-square p by device type {chi_p}")
     lines.append(f"  {'device type':<18} {'fleet':>7} {'eligible':>9} {'reports':>8} {'weight':>7} {'ratio':>6}")
     for name, v in b["by_device_type"].items():
         ratio = "n/a" if v["representation_ratio"] is None else f"{v['representation_ratio']:.2f}"
@@ -70,7 +77,7 @@ def summary_html(summary: dict[str, Any]) -> str:
         f"<b>{html.escape(s['scenario'])}</b> &middot; seed {s['seed']} &middot; config {s['config_hash']} "
         f"&middot; {s['devices']:,} devices &middot; {s['simulated_hours']:g} h<br>"
         f"rounds committed {r['committed']} of {r['attempted']} ({r['committed_per_hour']:.2f}/h); "
-        f"failed {r['failed']}, abandoned {r['abandoned']}<br>"
+        f"{html.escape(_ended_by(r['ended_by']))}<br>"
         f"straggler waste: compute {_pct(w['compute_fraction'])}, bytes {_pct(w['bytes_fraction'])}, "
         f"energy {_pct(w['energy_fraction'])}; coverage {_pct(b['coverage'])}<br>"
         "<table><tr><th>device type</th><th>fleet share</th><th>report share</th><th>ratio</th></tr>"

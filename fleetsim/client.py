@@ -24,8 +24,8 @@ from .events import CAUSES
 
 __all__ = ["Cohort", "resolve_cohort", "disruption_factor", "task_times"]
 
-_BATTERY = CAUSES.index("battery")
-_OS_LIMIT = CAUSES.index("os-limit")
+_BATTERY = CAUSES.index("battery-low")
+_EXECUTION_LIMIT = CAUSES.index("execution-limit")
 _CRASH = CAUSES.index("crash")
 
 
@@ -231,7 +231,7 @@ def resolve_cohort(
 
 def _first_interruption(cohort: Cohort, work: Workload, signal_off: np.ndarray, crash_at: np.ndarray) -> None:
     """Set the cohort's ``drop_at`` and ``cause``: the earliest interruption before the task
-    ends (a required signal off, battery below the minimum, the OS limit, a crash), if any.
+    ends (a required signal off, battery below the minimum, the execution limit, a crash), if any.
 
     ``signal_off`` is [S, n], the time after acceptance each signal turns off; ``crash_at``
     the time of a crash (inf: none), s.
@@ -242,7 +242,7 @@ def _first_interruption(cohort: Cohort, work: Workload, signal_off: np.ndarray, 
         if name in work.requires:
             candidates[1 + s] = signal_off[s]
     candidates[_BATTERY] = _battery_crossing(cohort, work.min_battery)
-    candidates[_OS_LIMIT] = np.full(n, work.execution_limit)
+    candidates[_EXECUTION_LIMIT] = np.full(n, work.execution_limit)
     candidates[_CRASH] = crash_at
     stacked = np.stack(candidates[1:], axis=0)
     first = np.argmin(stacked, axis=0)

@@ -16,16 +16,19 @@ import numpy as np
 import pandas as pd
 
 __all__ = [
-    "OUTCOMES", "CAUSES", "PHASES", "WASTE_CAUSES", "ROUND_STATUS", "EventLog", "round_status", "outcome_codes",
+    "OUTCOMES", "CAUSES", "PHASES", "WASTE_CAUSES", "ROUND_STATUS", "EventLog", "round_status", "outcome_codes", "json_key",
     "waste_codes",
 ]
 
-OUTCOMES = ("reported", "late", "stopped", "dropout")
-"""What became of an accepted device: its report arrived before close, after close, it was
-told to stop at close, or it dropped out."""
+OUTCOMES = ("on-time", "late", "stopped", "dropout")
+"""What became of an accepted device: its report arrived before the round closed (on time; it
+is *used* only if the round then committed), after it closed, it was told to stop at close, or
+it dropped out."""
 
-CAUSES = ("none", "signal:idle", "signal:charging", "signal:unmetered", "battery", "os-limit", "crash")
-"""Dropout causes by code (0: no dropout)."""
+CAUSES = ("none", "idle-ended", "charging-ended", "unmetered-ended", "battery-low", "execution-limit", "crash")
+"""Dropout causes by code (0: no dropout): a required signal ended (the device left idle, was
+unplugged, left the unmetered network), the battery fell to its floor, the OS execution limit
+ended the task, or the app crashed."""
 
 PHASES = ("none", "download", "train", "upload")
 """Task phases by code (0: not applicable)."""
@@ -33,45 +36,50 @@ PHASES = ("none", "download", "train", "upload")
 WASTE_CAUSES = (
     "used",
     "late",
-    "stopped-at-close",
-    "signal:idle",
-    "signal:charging",
-    "signal:unmetered",
-    "battery",
-    "os-limit",
+    "stopped",
+    "idle-ended",
+    "charging-ended",
+    "unmetered-ended",
+    "battery-low",
+    "execution-limit",
     "crash",
-    "failed-round",
-    "abandoned-round",
+    "selection-timeout",
+    "report-deadline",
     "server-outage",
 )
 """Why a participation's work was not used by a committed round ("used": it was)."""
 
-ROUND_STATUS = ("committed", "failed", "abandoned", "outage")
-"""What became of a round: it committed, too few reports came by the deadline, too few
-devices were accepted by the selection timeout, or a server outage cut it."""
+ROUND_STATUS = ("committed", "selection-timeout", "report-deadline", "server-outage")
+"""What became of a round, named by what ended it: it committed; the selection timeout passed
+before enough devices were accepted; the report deadline passed with too few reports; or a
+server outage cut it. A round that did not commit wastes its work for the same word."""
 
 _OUT = {name: i for i, name in enumerate(OUTCOMES)}
 _WASTE = {name: i for i, name in enumerate(WASTE_CAUSES)}
 # A dropout's work is wasted for its dropout cause (the names are shared; code 0 "none" is unused).
 _CAUSE_TO_WASTE = np.array([_WASTE["used"]] + [_WASTE[c] for c in CAUSES[1:]], dtype=np.int8)
-_ROUND_WASTE = {"failed": "failed-round", "abandoned": "abandoned-round", "outage": "server-outage"}
+
+
+def json_key(word: str) -> str:
+    """A vocabulary word as a summary.json key: ``-`` written ``_`` (``idle-ended`` -> ``idle_ended``)."""
+    return word.replace("-", "_")
 
 
 def round_status(lost: bool, enough: bool, reports: int, required: int) -> str:
-    """A round's status: ``outage`` if an outage cut it, ``abandoned`` if too few devices were
-    accepted (``enough`` false), else ``committed`` with at least ``required`` reports, else
-    ``failed``."""
+    """A round's status: ``server-outage`` if an outage cut it, ``selection-timeout`` if too few
+    devices were accepted (``enough`` false), else ``committed`` with at least ``required``
+    reports, else ``report-deadline``."""
     if lost:
-        return "outage"
+        return "server-outage"
     if not enough:
-        return "abandoned"
-    return "committed" if reports >= required else "failed"
+        return "selection-timeout"
+    return "committed" if reports >= required else "report-deadline"
 
 
-def outcome_codes(reported: np.ndarray, late: np.ndarray, dropout: np.ndarray) -> np.ndarray:
+def outcome_codes(on_time: np.ndarray, late: np.ndarray, dropout: np.ndarray) -> np.ndarray:
     """Outcome codes (into OUTCOMES) from disjoint masks; a device in none of them was stopped."""
-    outcome = np.full(reported.shape, _OUT["stopped"], dtype=np.int8)
-    outcome[reported] = _OUT["reported"]
+    outcome = np.full(on_time.shape, _OUT["stopped"], dtype=np.int8)
+    outcome[on_time] = _OUT["on-time"]
     outcome[late] = _OUT["late"]
     outcome[dropout] = _OUT["dropout"]
     return outcome
@@ -83,14 +91,14 @@ def waste_codes(status: str, late: np.ndarray, dropout: np.ndarray, cause: np.nd
     ``late``, ``dropout`` and ``used`` are masks over the round's participations, ``cause``
     their dropout cause codes (into CAUSES), ``status`` the round's status. A dropout is
     wasted for its cause; otherwise a round that did not commit wastes the work for the
-    round's reason, a late report for being late, and anything else was stopped at close;
+    round's status word, a late report for being late, and anything else was stopped at close;
     ``used`` (reports of a committed round) overrides all.
     """
-    waste = np.full(late.shape, _WASTE["stopped-at-close"], dtype=np.int8)
+    waste = np.full(late.shape, _WASTE["stopped"], dtype=np.int8)
     waste[late] = _WASTE["late"]
     waste[dropout] = _CAUSE_TO_WASTE[cause[dropout]]
     if status != "committed":
-        waste[~dropout] = _WASTE[_ROUND_WASTE[status]]
+        waste[~dropout] = _WASTE[status]
     waste[used] = _WASTE["used"]
     return waste
 
@@ -105,13 +113,13 @@ PARTICIPATION_COLUMNS = {
     "train_s": np.float64,
     "upload_s": np.float64,
     "outcome": np.int8,
-    "cause": np.int8,
-    "phase": np.int8,
+    "dropout_cause": np.int8,
+    "dropout_phase": np.int8,
     "waste_cause": np.int8,
     "used": np.bool_,
     "compute_s": np.float64,
-    "bytes_down": np.float64,
-    "bytes_up": np.float64,
+    "download_bytes": np.float64,
+    "upload_bytes": np.float64,
     "energy_wh": np.float64,
     "battery_start_pct": np.float64,
     "battery_used_pct": np.float64,
@@ -158,15 +166,15 @@ class EventLog:
         )
 
     def participations(self, type_names: tuple[str, ...], region_names: tuple[str, ...]) -> pd.DataFrame:
-        """One row per participation; device type, region, outcome, cause, phase and waste
-        cause as labels (Categorical; the categories are all the names, in code order)."""
+        """One row per participation; device type, region, outcome, dropout cause and phase
+        and waste cause as labels (Categorical; the categories are all the names, in code order)."""
         frame = self._frame(self._parts, PARTICIPATION_COLUMNS)
         labels = {
             "device_type": type_names,
             "region": region_names,
             "outcome": OUTCOMES,
-            "cause": CAUSES,
-            "phase": PHASES,
+            "dropout_cause": CAUSES,
+            "dropout_phase": PHASES,
             "waste_cause": WASTE_CAUSES,
         }
         for column, names in labels.items():

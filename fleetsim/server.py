@@ -2,7 +2,7 @@
 
 A round opens; it accepts check-ins per the selection policy until
 ``ceil(target_reports * over_selection)`` are accepted or the selection timeout passes (with
-fewer than ``min_reports`` accepted the round is abandoned); then the report deadline runs.
+fewer than ``min_reports`` accepted the round ends as ``selection-timeout``); then the report deadline runs.
 The round closes at the earlier of ``target_reports`` reports or the deadline and commits
 when it holds at least ``min_reports``. At close, devices still downloading or training are
 told to stop; a device already uploading finishes and its report is refused as late. The
@@ -275,25 +275,25 @@ class RoundServer:
         closed, lost = self._close_at(opened, selected_at, report_at, enough)
 
         rel_close = closed - accept_s
-        reported = report_at <= closed
-        dropped = ~reported & (cohort.drop_at <= rel_close)
-        working = ~reported & ~dropped
+        on_time = report_at <= closed
+        dropped = ~on_time & (cohort.drop_at <= rel_close)
+        working = ~on_time & ~dropped
         # At close a device already uploading finishes (its report is late) or drops out on the way.
         uploading = working & (cohort.phase_at(rel_close) == _UPLOAD) & (not lost)
         late = uploading & np.isinf(cohort.drop_at)
         is_drop = dropped | (uploading & ~late)
 
-        end_rel = np.where(reported | late, cohort.task_s, rel_close)
+        end_rel = np.where(on_time | late, cohort.task_s, rel_close)
         end_rel = np.where(is_drop, cohort.drop_at, end_rel)
         cause = np.where(is_drop, cohort.cause, 0).astype(np.int8)
-        n_reports = int(reported.sum())
+        n_reports = int(on_time.sum())
         status = round_status(lost, enough, n_reports, rounds.required_reports)
-        used = reported & (status == "committed")
+        used = on_time & (status == "committed")
         self._log_participations(
             index, cohort, end_rel,
-            outcome=outcome_codes(reported, late, is_drop),
-            cause=cause,
-            phase=np.where(is_drop, cohort.phase_at(cohort.drop_at), 0).astype(np.int8),
+            outcome=outcome_codes(on_time, late, is_drop),
+            dropout_cause=cause,
+            dropout_phase=np.where(is_drop, cohort.phase_at(cohort.drop_at), 0).astype(np.int8),
             waste_cause=waste_codes(status, late, is_drop, cause, used),
             used=used,
         )
@@ -345,7 +345,7 @@ class RoundServer:
             kth = np.partition(report_at, k - 1)[k - 1] if report_at.size >= k else np.inf
             closed = max(min(deadline_at, kth), selected_at)
         else:
-            closed = selected_at  # abandoned when the selection timeout passes
+            closed = selected_at  # ended by the selection timeout
         outage_start = self._next_outage_after(opened)
         lost = bool(outage_start <= closed)
         return (float(outage_start) if lost else float(closed)), lost
@@ -355,7 +355,7 @@ class RoundServer:
         waste_cause, used); work done is counted up to each participation's end."""
         fleet = self.runtime.fleet
         devices, accept_s = cohort.device, cohort.accept_s
-        compute_s, bytes_down, bytes_up, energy_wh = cohort.work_until(end_rel)
+        compute_s, download_bytes, upload_bytes, energy_wh = cohort.work_until(end_rel)
         self.log.add_participations(
             round=np.full(devices.size, index),
             device=devices,
@@ -367,8 +367,8 @@ class RoundServer:
             train_s=cohort.train_s,
             upload_s=cohort.upload_s,
             compute_s=compute_s,
-            bytes_down=bytes_down,
-            bytes_up=bytes_up,
+            download_bytes=download_bytes,
+            upload_bytes=upload_bytes,
             energy_wh=energy_wh,
             battery_start_pct=cohort.battery_start_pct,
             battery_used_pct=100.0 * energy_wh / cohort.battery_wh,

@@ -12,7 +12,7 @@ Every other quantity is a number followed by its unit symbol, the same way for e
 - power: ``3.2W``, ``800mW``; bare number: W;
 - bit rates: ``14Mbit/s``, ``500kbit/s``, ``1.2Gbit/s``, ``bit/s`` (SI prefixes, as
   IEC 80000-13 uses them for the bit: k = 10**3, M = 10**6, G = 10**9); bare number: bit/s;
-- percentages: ``30%``, from 0 to 100; bare number: percent;
+- percentages: ``30%``, from 0 to 100; bare number: a percentage;
 - hazards (events per unit of time): ``0.05/h``, ``1.2/d``, ``0.001/s``, any duration unit
   after the slash; bare number: per hour.
 

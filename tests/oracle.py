@@ -26,7 +26,7 @@ Everything is simulated the slow, obvious way, with one simpy process per device
   phase, less the charger whenever the charging timeline is on), or the round closing while
   it downloads or trains (it is stopped; an upload in flight finishes and is late);
 - a server process runs the round protocol: accept up to ceil(target * over_selection)
-  until the selection timeout (fewer than min_reports accepted: abandoned), then wait for
+  until the selection timeout (fewer than min_reports accepted: selection-timeout), then wait for
   target_reports reports or the report deadline counted from the end of selection, commit
   with at least min_reports, wait the aggregation time, open the next round; an accepted
   device rests for ``rest`` after its participation ends. The server starts
@@ -318,7 +318,7 @@ class _Oracle:
                 now = env.now
                 slope = ((charge_w if dev.on[_CHARGING] else 0.0) - draw_w) * per_ws
                 cross_at = now + (level - work.min_battery) / -slope if slope < 0 else _INF
-                due = {"phase": phase_end, "os-limit": os_at, "crash": crash_at, "battery": cross_at}
+                due = {"phase": phase_end, "execution-limit": os_at, "crash": crash_at, "battery-low": cross_at}
                 first = min(due, key=lambda key: (due[key], key != "phase"))  # ties: completion
                 dev.change = env.event()
                 waits = [env.timeout(max(due[first] - now, 0.0)), dev.change]
@@ -331,7 +331,7 @@ class _Oracle:
                 dev.change = None
                 off = [s for s in self.required if not dev.on[s]]
                 if off:
-                    ended_by = "signal:" + SIGNAL_NAMES[off[0]]
+                    ended_by = SIGNAL_NAMES[off[0]] + "-ended"
                     break
                 if waits[0] in fired:
                     if first == "phase":
@@ -354,7 +354,7 @@ class _Oracle:
         elif rnd.closed:
             part.outcome = "late"
         else:
-            part.outcome = "reported"
+            part.outcome = "on-time"
             rnd.reports += 1
             if rnd.reports == self.config.rounds.target_reports:
                 rnd.target.succeed()
@@ -377,11 +377,11 @@ class _Oracle:
             rnd.selecting = False
             rnd.selected_s = env.now
             if rnd.accepted < rounds.required_reports:
-                rnd.status = "abandoned"
+                rnd.status = "selection-timeout"
             else:
                 if not rnd.target.triggered:
                     yield env.timeout(rounds.report_deadline) | rnd.target
-                rnd.status = "committed" if rnd.reports >= rounds.required_reports else "failed"
+                rnd.status = "committed" if rnd.reports >= rounds.required_reports else "report-deadline"
             rnd.closed = True
             rnd.closed_s = env.now
             rnd.close.succeed()  # devices still downloading or training stop now
@@ -418,17 +418,17 @@ class _Oracle:
                 radio_w, train_w = float(fleet.radio_power_w[i]), float(fleet.train_power_w[i])
                 energy_wh = (radio_w * (part.download_done + part.upload_done) + train_w * part.train_done) / 3600.0
                 committed = status[part.round] == "committed"
-                used = part.outcome == "reported" and committed
+                used = part.outcome == "on-time" and committed
                 if used:
                     waste = "used"
                 elif part.outcome == "dropout":
                     waste = part.cause
                 elif not committed:
-                    waste = {"failed": "failed-round", "abandoned": "abandoned-round"}[status[part.round]]
+                    waste = status[part.round]  # the round's status names the waste
                 elif part.outcome == "late":
                     waste = "late"
                 else:
-                    waste = "stopped-at-close"
+                    waste = "stopped"
                 rows.append({
                     "round": part.round - first,
                     "device": i,
@@ -437,13 +437,13 @@ class _Oracle:
                     "accepted_s": part.accepted_s,
                     "ended_s": part.ended_s,
                     "outcome": part.outcome,
-                    "cause": part.cause,
-                    "phase": part.phase,
+                    "dropout_cause": part.cause,
+                    "dropout_phase": part.phase,
                     "waste_cause": waste,
                     "used": used,
                     "compute_s": part.train_done,
-                    "bytes_down": bytes_down,
-                    "bytes_up": bytes_up,
+                    "download_bytes": bytes_down,
+                    "upload_bytes": bytes_up,
                     "energy_wh": energy_wh,
                     "battery_start_pct": part.battery_start_pct,
                     "samples": int(fleet.samples[i]),
@@ -469,8 +469,8 @@ class _Oracle:
 
 
 _PART_COLUMNS = [
-    "round", "device", "device_type", "region", "accepted_s", "ended_s", "outcome", "cause", "phase",
-    "waste_cause", "used", "compute_s", "bytes_down", "bytes_up", "energy_wh", "battery_start_pct",
+    "round", "device", "device_type", "region", "accepted_s", "ended_s", "outcome", "dropout_cause", "dropout_phase",
+    "waste_cause", "used", "compute_s", "download_bytes", "upload_bytes", "energy_wh", "battery_start_pct",
     "samples",
 ]
 

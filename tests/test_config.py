@@ -308,7 +308,7 @@ def test_schema_shows_the_new_keys_with_examples():
 
 @pytest.mark.parametrize("limit", ["10m", "null"])
 def test_a_written_configuration_reads_back_as_it_was(limit):
-    # config.json is the run's typed settings: no OS limit is written as null, never Infinity
+    # config.json is the run's typed settings: no execution limit is written as null, never Infinity
     # (JSON has no infinity, RFC 8259 section 6).
     config = load_config(example_path(), [f"workload.execution_limit={limit}"])
     text = json.dumps(config.model_dump(mode="json"), allow_nan=False)

@@ -68,18 +68,18 @@ def _check(result: fleetsim.Result) -> None:
     assert (ended >= accepted - EPS).all()
     assert (accepted[1:][same] >= ended[:-1][same] - EPS).all()
     assert (accepted[1:][same] >= ended[:-1][same] + settings_.rest - EPS).all()
-    # Every accepted device has exactly one outcome: accepted = reported + late + stopped + dropout.
+    # Every accepted device has exactly one outcome: accepted = on-time + late + stopped + dropout.
     outcomes = pd.crosstab(parts["round"], parts["outcome"]).reindex(columns=list(OUTCOMES), fill_value=0)
     per_round = outcomes.reindex(rounds["round"], fill_value=0)
     assert (per_round.sum(axis=1).to_numpy() == rounds["accepted"].to_numpy()).all()
-    assert (per_round["reported"].to_numpy() == rounds["reports"].to_numpy()).all()
+    assert (per_round["on-time"].to_numpy() == rounds["reports"].to_numpy()).all()
     assert (rounds["accepted"] <= settings_.accept_count).all()
     # The eligible check-ins seen in a selection include every one it accepted.
     assert (rounds["checkins"] >= rounds["accepted"]).all()
     # Waste is part of the work: per participation and in total.
     assert (parts["compute_s"] <= parts["train_s"] + EPS).all()
     wasted = parts[~parts["used"]]
-    for column in ("compute_s", "bytes_down", "bytes_up", "energy_wh"):
+    for column in ("compute_s", "download_bytes", "upload_bytes", "energy_wh"):
         assert wasted[column].sum() <= parts[column].sum() + EPS
     waste = result.summary["waste"]
     for key in ("compute_fraction", "bytes_fraction", "energy_fraction"):

@@ -136,7 +136,8 @@ def close(a: np.ndarray | float, b: np.ndarray | float) -> bool:
 
 
 def read_table(folder: Path, name: str) -> pd.DataFrame:
-    text = {"device_type", "region", "data_quartile", "cause", "phase", "status", "hour_utc"}
+    text = {"device_type", "region", "data_quartile", "cause", "dropout_cause", "dropout_phase", "status",
+            "hour_utc"}
     header = pd.read_csv(folder / "tables" / f"{name}.csv", nrows=0).columns
     return pd.read_csv(folder / "tables" / f"{name}.csv", dtype={c: str for c in header if c in text},
                        keep_default_na=False, na_values={c: [""] for c in header if c not in text},
@@ -181,8 +182,8 @@ def test_markdown_carries_the_same_answers(run_dir: Path) -> None:
 def test_figures_are_reproducible(run_dir: Path) -> None:
     from fleetsim.report import figures
 
-    rows = [("Rounds", [("committed", 0.25), ("failed", 0.75)])]
-    legend = {"committed": "committed", "failed": "failed"}
+    rows = [("Rounds", [("committed", 0.25), ("report_deadline", 0.75)])]
+    legend = {"committed": "committed", "report_deadline": "ended by the report deadline"}
     assert figures.share_rows(rows, legend, "x") == figures.share_rows(rows, legend, "x")
 
 
@@ -197,10 +198,12 @@ def test_every_figure_number_equals_the_run_folder(run_dir: Path) -> None:
     headline = frame(parsed, "headline").set_index("figure")["value"]
     attempted = r["attempted"]
     assert close(float(headline["Committed rounds per hour"]), r["committed_per_hour"])
-    for status, words in (("committed", "committed"), ("failed", "failed"), ("abandoned", "abandoned"),
-                          ("outage", "lost to a server outage")):
-        assert int(headline[f"Rounds {words}"]) == r[status]
-        assert close(float(headline[f"Share of rounds {words}"]), r[status] / attempted)
+    by_status = {"committed": r["committed"], **r["ended_by"]}
+    for status, words in (("committed", "committed"), ("report_deadline", "ended by the report deadline"),
+                          ("selection_timeout", "ended by the selection timeout"),
+                          ("server_outage", "cut by a server outage")):
+        assert int(headline[f"Rounds {words}"]) == by_status[status]
+        assert close(float(headline[f"Share of rounds {words}"]), by_status[status] / attempted)
     assert close(float(headline["Straggler waste: share of compute"]), w["compute_fraction"])
     assert close(float(headline["Straggler waste: share of data (bytes)"]), w["bytes_fraction"])
     assert close(float(headline["Straggler waste: share of energy"]), w["energy_fraction"])
@@ -209,8 +212,16 @@ def test_every_figure_number_equals_the_run_folder(run_dir: Path) -> None:
     hourly = read_table(run_dir, "hourly")
     shown = frame(parsed, "over-time")
     assert list(shown["hour_utc"]) == list(hourly["hour_utc"])
+    by_region = read_table(run_dir, "hourly_eligible_by_region")
     for column in shown.columns[1:]:
-        assert close(numbers(shown[column]), hourly[column].to_numpy(float)), column
+        if column in hourly.columns:
+            expected = hourly[column].to_numpy(float)
+        else:  # eligible_<region>, from the long table
+            region = by_region[by_region["region"] == column.removeprefix("eligible_")].sort_values("hour")
+            assert list(region["hour_utc"]) == list(hourly["hour_utc"])
+            expected = region["eligible"].to_numpy(float)
+        assert close(numbers(shown[column]), expected), column
+    assert set(by_region["region"]) == set(read_table(run_dir, "bias_by_region")["region"])
     days = frame(parsed, "over-time-days")
     assert close(numbers(days["committed"]).sum(), r["committed"])
     daily = read_table(run_dir, "daily")
@@ -224,7 +235,7 @@ def test_every_figure_number_equals_the_run_folder(run_dir: Path) -> None:
 
     rounds = read_table(run_dir, "rounds")
     durations = frame(parsed, "durations")
-    for i, (key, mask) in enumerate((("selection_s", rounds["status"] != "abandoned"),
+    for i, (key, mask) in enumerate((("selection_s", rounds["status"] != "selection-timeout"),
                                      ("report_s", rounds["status"] == "committed"))):
         values = rounds.loc[mask, key].to_numpy(float)
         assert int(durations["rounds"][i]) == values.size
@@ -257,7 +268,8 @@ def test_every_figure_number_equals_the_run_folder(run_dir: Path) -> None:
         assert close(numbers(never.loc[never["group"].isin(table[key]), "never_share"]), table["never_share"])
 
     chi = frame(parsed, "chi-square")
-    assert close(float(chi["chi_square"][0]), b["chi_square"]) and close(float(chi["p"][0]), b["chi_square_p"])
+    assert close(float(chi["chi_square"][0]), b["chi_square_device_type"])
+    assert close(float(chi["p"][0]), b["chi_square_device_type_p"])
     for i, name in ((1, "bias_by_region"), (2, "bias_by_data_quartile")):
         table = read_table(run_dir, name)
         reports = table["reports"].to_numpy(float)
@@ -275,9 +287,13 @@ def test_every_figure_number_equals_the_run_folder(run_dir: Path) -> None:
     assert close(numbers(shown["reports"]), counts["reports"]) and close(numbers(shown["devices"]), counts["devices"])
     gini = frame(parsed, "gini")["value"]
     assert close(float(gini[0]), b["gini"])
-    assert math.isclose(float(gini[1]), b["gini"], rel_tol=1e-9)  # the drawn Lorenz curve gives the same Gini
-    assert close(float(gini[1]), b["lorenz_gini"]) and close(float(gini[2]), b["top_tenth_share"])
+    assert close(float(gini[1]), b["top_tenth_share"])
     curve = read_table(run_dir, "lorenz")
+    # The drawn Lorenz curve gives the same Gini: G = 1 - 2 * (area under the curve), the
+    # curve linear between its points (trapezoid rule; the standard definition).
+    area = float(np.sum(np.diff(curve["device_share"]) * (curve["report_share"][1:].to_numpy()
+                                                           + curve["report_share"][:-1].to_numpy()) / 2))
+    assert math.isclose(1 - 2 * area, b["gini"], rel_tol=1e-9)
     shown = frame(parsed, "lorenz")
     assert close(numbers(shown["device_share"]), curve["device_share"])
     assert close(numbers(shown["report_share"]), curve["report_share"])
@@ -288,7 +304,10 @@ def test_every_figure_number_equals_the_run_folder(run_dir: Path) -> None:
     cost = read_table(run_dir, "device_cost")
     shown = frame(parsed, "cost")
     for column in shown.columns[1:]:
-        assert close(numbers(shown[column]), cost[column].to_numpy(float)), column
+        # The page shows data in MB (SI: 10**6 bytes, IEC 80000-13); the table holds bytes.
+        expected = (cost[column.replace("megabytes", "bytes")] / 1e6 if column.startswith("megabytes")
+                    else cost[column]).to_numpy(float)
+        assert close(numbers(shown[column]), expected), column
 
     shown = frame(parsed, "load").set_index("figure")["value"]
     assert close(float(shown.iloc[0]), load["checkins_per_s_peak_hour"])

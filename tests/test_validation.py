@@ -40,7 +40,7 @@ def status_names(result: fleetsim.Result) -> np.ndarray:
 
 # A task whose length is the same on every device: 1 MB down and up at 8 Mbit/s (1 s each),
 # 300 samples at 1 s per sample, batch 1, one epoch: T = 302 s. No signal is required, the
-# battery floor is 0 and there is no OS limit, so a crash is the only way to drop out.
+# battery floor is 0 and there is no execution limit, so a crash is the only way to drop out.
 FIXED_TASK = [
     "workload.requires=[]",
     "workload.min_battery=0",
@@ -122,7 +122,7 @@ def test_task_survival_matches_kaplan_meier_from_lifelines(binomial_run):
 
     parts = binomial_run.participations
     duration = (parts["ended_s"] - parts["accepted_s"]).to_numpy()
-    crashed = (parts["cause"] == "crash").to_numpy()
+    crashed = (parts["dropout_cause"] == "crash").to_numpy()
     assert crashed.sum() >= 500
     fitter = KaplanMeierFitter().fit(duration, event_observed=crashed)
     times = np.array([30.0, 100.0, 200.0, 290.0])
@@ -192,7 +192,7 @@ def test_kth_report_time_follows_the_beta_law_of_order_statistics():
     assert stats.kstest(u, stats.beta(k, n - k + 1).cdf).pvalue >= ALPHA
     # The median report delay is the 20th order statistic's law too: check a second k
     # from the log itself (the 20th report of each round).
-    reported = parts[parts["outcome"] == "reported"]
+    reported = parts[parts["outcome"] == "on-time"]
     twentieth = reported.groupby("round")["ended_s"].apply(lambda v: np.sort(v.to_numpy())[19])
     start = rounds.set_index("round")["selected_s"].loc[twentieth.index]
     u20 = task_cdf((twentieth - start).to_numpy())
@@ -551,8 +551,8 @@ def test_summary_chi_square_is_scipy_chisquare_of_reports_against_fleet_shares(d
     assert reports.sum() > 1000
     scipy_result = stats.chisquare(reports, fleet_share * reports.sum())
     bias = diurnal_run.summary["bias"]
-    assert math.isclose(bias["chi_square"], scipy_result.statistic, rel_tol=1e-9)
-    assert math.isclose(bias["chi_square_p"], scipy_result.pvalue, rel_tol=1e-6, abs_tol=1e-300)
+    assert math.isclose(bias["chi_square_device_type"], scipy_result.statistic, rel_tol=1e-9)
+    assert math.isclose(bias["chi_square_device_type_p"], scipy_result.pvalue, rel_tol=1e-6, abs_tol=1e-300)
     table = diurnal_run.tables["bias_by_device_type"]
     assert np.allclose(table["reports"].to_numpy(), reports)
 

@@ -51,7 +51,7 @@ class SignalPattern(_Strict):
 
 
 class BatteryLevel(_Strict):
-    """Battery level (percent, ``72%``) seen at check-in: a Beta distribution by mean and sd."""
+    """Battery level (a percentage, ``72%``) seen at check-in: a Beta distribution by mean and sd."""
 
     mean: Percentage = Field(gt=0, lt=100)
     sd: Percentage = Field(gt=0, lt=50)
@@ -189,7 +189,7 @@ class Workload(_Strict):
     batch_size: Count = Field(default=32, ge=1, le=1_000_000_000)
     memory_needed: Size = Field(default=0.0, ge=0)
     requires: list[SignalName] = Field(default_factory=lambda: list(_ALL_SIGNALS))
-    min_battery: Percentage = Field(default=0.0, ge=0, le=100, description="battery level, percent")
+    min_battery: Percentage = Field(default=0.0, ge=0, le=100, description="battery level, %")
     # Unset or null (the default, held as infinity): no limit. A value in the file must be finite.
     execution_limit: PositiveDuration = Field(default=float("inf"))
     crash_rate: Hazard = Field(default=0.0, ge=0, description="crash hazard while working, per hour")

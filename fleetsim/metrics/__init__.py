@@ -19,13 +19,13 @@ from ..analysis import (
     correlation,
     daily_table,
     gini,
-    lorenz,
     lorenz_table,
     mean_working,
     share_at_limit,
     top_share,
     wilson_interval,
 )
+from ..events import json_key
 from ..survival import task_durations, task_survival_tables
 from ..units import format_instant
 from .bias import BIAS_TABLES, bias_tables, participation_counts
@@ -64,13 +64,12 @@ def _bias_part(bias: dict[str, pd.DataFrame], chi: pd.DataFrame, counts: pd.Data
         **{f"by_{key}": bias_map(table, key) for key, table in bias.items()},
         "coverage": float((reports_per_device > 0).mean()) if n else float("nan"),
         "gini": gini(reports_per_device),
-        "chi_square": tests.at["device_type", "statistic"],
-        "chi_square_p": tests.at["device_type", "p"],
+        "chi_square_device_type": tests.at["device_type", "statistic"],
+        "chi_square_device_type_p": tests.at["device_type", "p"],
         "chi_square_region": tests.at["region", "statistic"],
         "chi_square_region_p": tests.at["region", "p"],
         "chi_square_data_quartile": tests.at["data_quartile", "statistic"],
         "chi_square_data_quartile_p": tests.at["data_quartile", "p"],
-        "lorenz_gini": lorenz(reports, devices)[2],
         "top_tenth_share": top_share(reports, devices, 0.1),
     }
 
@@ -84,7 +83,7 @@ def compute_metrics(record: RunRecord) -> Metrics:
     type_names, region_names = list(fleet.type_names), list(fleet.region_names)
     rounds = round_frame(record.rounds, start)
 
-    labelled = parts.assign(bytes=parts["bytes_down"] + parts["bytes_up"])
+    labelled = parts.assign(bytes=parts["download_bytes"] + parts["upload_bytes"])
     wasted = labelled[~labelled["used"]]
     by_cause = waste_by_cause(wasted)
     by_type = waste_by_device_type(labelled, wasted, type_names)
@@ -96,7 +95,8 @@ def compute_metrics(record: RunRecord) -> Metrics:
     chi = chi_square_table(bias)
 
     closed = closed_per_hour(rounds, n_hours)
-    hourly, peak = hourly_table(start, n_hours, closed, census, parts, region_names, config.rounds.checkin_every)
+    hourly, by_region, peak = hourly_table(start, n_hours, closed, census, parts, region_names,
+                                           config.rounds.checkin_every)
     survival, survival_minutes = task_survival_tables(parts, type_names)
 
     tables = {
@@ -108,13 +108,14 @@ def compute_metrics(record: RunRecord) -> Metrics:
         "dropouts": dropout_table(labelled[labelled["outcome"] == "dropout"]),
         "device_cost": device_cost(labelled),
         "hourly": hourly,
-        "daily": daily_table(hourly, list(closed)),
+        "hourly_eligible_by_region": by_region,
+        "daily": daily_table(hourly, [json_key(status) for status in closed]),
         "chi_square": chi,
         "lorenz": lorenz_table(counts),
         "task_survival": survival,
         "task_survival_by_minute": survival_minutes,
     }
-    selection = rounds.loc[rounds["status"] != "abandoned", "selection_s"].to_numpy(dtype=float)
+    selection = rounds.loc[rounds["status"] != "selection-timeout", "selection_s"].to_numpy(dtype=float)
     round_extra = {
         "selection_at_timeout": share_at_limit(selection, float(config.rounds.selection_timeout)),
         "eligible_correlation": correlation(closed["committed"], hourly["eligible"].to_numpy()),

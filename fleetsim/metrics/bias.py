@@ -9,24 +9,34 @@ import pandas as pd
 
 from ..analysis import wilson_interval
 
-__all__ = ["data_quartile", "bias_tables", "participation_counts", "BIAS_TABLES"]
+__all__ = ["QUARTILES", "data_quartile", "quartile_bounds", "bias_tables", "participation_counts", "BIAS_TABLES"]
 
 BIAS_TABLES = {"device_type": "bias_by_device_type", "region": "bias_by_region",
                "data_quartile": "bias_by_data_quartile"}
 """Grouping column -> name of its bias table."""
 
 
+QUARTILES = ("Q1", "Q2", "Q3", "Q4")
+
+
 def data_quartile(samples: np.ndarray) -> tuple[np.ndarray, list[str]]:
-    """Each device's quartile of local sample counts (0..3) and the quartiles' names with bounds."""
+    """Each device's quartile of local sample counts (0..3) and the quartiles' names ``Q1``..``Q4``.
+
+    A device is in quartile k when k of the fleet's three sample-count quartile points are at or
+    below its count; the bounds each quartile holds are in :func:`quartile_bounds`.
+    """
     edges = np.quantile(samples, [0.25, 0.5, 0.75])
-    codes = np.searchsorted(edges, samples, side="right")
-    names = [
-        f"Q1 (<= {edges[0]:.0f} samples)",
-        f"Q2 ({edges[0]:.0f}-{edges[1]:.0f})",
-        f"Q3 ({edges[1]:.0f}-{edges[2]:.0f})",
-        f"Q4 (> {edges[2]:.0f})",
-    ]
-    return codes, names
+    return np.searchsorted(edges, samples, side="right"), list(QUARTILES)
+
+
+def quartile_bounds(samples: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The fewest and most samples held by a device of each quartile (NaN for an empty one)."""
+    low, high = np.full(4, np.nan), np.full(4, np.nan)
+    for k in range(4):
+        held = samples[codes == k]
+        if held.size:
+            low[k], high[k] = held.min(), held.max()
+    return low, high
 
 
 def _share(x: np.ndarray) -> np.ndarray:
@@ -145,6 +155,10 @@ def bias_tables(fleet: Any, parts: pd.DataFrame, census: pd.DataFrame,
         table.insert(at, "eligible_share_se", se)
         table.insert(at + 1, "eligible_drawn", drawn_by_group)
         tables[key] = table.rename(columns={"group": key})
+    low, high = quartile_bounds(fleet.samples, quartile)
+    whole = bool(np.isfinite(low).all())  # counts stay integers unless a quartile is empty
+    tables["data_quartile"].insert(1, "samples_low", low.astype(np.int64) if whole else low)
+    tables["data_quartile"].insert(2, "samples_high", high.astype(np.int64) if whole else high)
     return tables
 
 

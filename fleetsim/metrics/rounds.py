@@ -13,12 +13,15 @@ __all__ = ["round_frame", "closed_per_hour"]
 
 
 def round_frame(rounds: pd.DataFrame, start: datetime) -> pd.DataFrame:
-    """The rounds with ``selection_s``, ``report_s``, ``duration_s`` (s) and ``opened_utc`` added."""
+    """The rounds with ``selection_s``, ``report_s``, ``duration_s`` (s) and ``opened_utc``
+    (ISO 8601 with ``Z``) added."""
     out = rounds.copy()
     out["selection_s"] = out["selected_s"] - out["opened_s"]
     out["report_s"] = out["closed_s"] - out["selected_s"]
     out["duration_s"] = out["closed_s"] - out["opened_s"]
-    out["opened_utc"] = pd.Timestamp(start) + pd.to_timedelta(out["opened_s"], unit="s")
+    opened = pd.Timestamp(start) + pd.to_timedelta(out["opened_s"], unit="s")
+    # ISO 8601 UTC with a trailing Z, to the millisecond.
+    out["opened_utc"] = opened.dt.tz_convert("UTC").dt.strftime("%Y-%m-%dT%H:%M:%S.%f").str[:-3] + "Z"
     return out
 
 

@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 
 from ..analysis import quantiles
-from ..events import OUTCOMES
+from ..events import OUTCOMES, ROUND_STATUS, json_key
 
 __all__ = ["clean", "rounds_part", "participations_part", "waste_part", "bias_map"]
 
@@ -44,12 +44,10 @@ def rounds_part(rounds: pd.DataFrame, hours: float, extra: dict[str, float]) -> 
     return {
         "attempted": int(len(rounds)),
         "committed": int(counts.get("committed", 0)),
-        "failed": int(counts.get("failed", 0)),
-        "abandoned": int(counts.get("abandoned", 0)),
-        "outage": int(counts.get("outage", 0)),
+        "ended_by": {json_key(s): int(counts.get(s, 0)) for s in ROUND_STATUS[1:]},
         "committed_per_hour": int(counts.get("committed", 0)) / hours,
         "duration_s": quantiles(committed["duration_s"]),
-        "selection_s": quantiles(rounds.loc[rounds["status"] != "abandoned", "selection_s"]),
+        "selection_s": quantiles(rounds.loc[rounds["status"] != "selection-timeout", "selection_s"]),
         "report_s": quantiles(committed["report_s"]),
         **extra,
     }
@@ -62,9 +60,11 @@ def participations_part(labelled: pd.DataFrame, used: np.ndarray, task_s: np.nda
         "accepted": int(len(labelled)),
         "used_reports": int(used.sum()),
         "by_outcome": {
-            k: int(v) for k, v in labelled["outcome"].value_counts().reindex(OUTCOMES, fill_value=0).items()
+            json_key(k): int(v) for k, v in labelled["outcome"].value_counts().reindex(OUTCOMES, fill_value=0).items()
         },
-        "dropouts_by_cause": {k: int(v) for k, v in drops["cause"].value_counts().items() if v > 0 and k != "none"},
+        "dropouts_by_cause": {
+            json_key(k): int(v) for k, v in drops["dropout_cause"].value_counts().items() if v > 0 and k != "none"
+        },
         "task_s": quantiles(task_s),
     }
 
@@ -80,7 +80,7 @@ def waste_part(totals: dict[str, float], waste_totals: dict[str, float], by_caus
         "bytes": waste_totals["bytes"],
         "energy_wh": waste_totals["energy_wh"],
         "by_cause": {
-            row["cause"]: {"participations": row["participations"], "compute_s": row["compute_s"],
+            json_key(row["cause"]): {"participations": row["participations"], "compute_s": row["compute_s"],
                            "bytes": row["bytes"], "energy_wh": row["energy_wh"]}
             for row in by_cause.to_dict("records") if row["participations"] > 0
         },
@@ -94,5 +94,7 @@ def waste_part(totals: dict[str, float], waste_totals: dict[str, float], by_caus
 
 
 def bias_map(table: pd.DataFrame, key: str) -> dict[str, Any]:
-    """A bias table as {group name: its shares, ratio and interval, never share}."""
-    return {row[key]: {c: row[c] for c in BIAS_FIGURES} for row in table.to_dict("records")}
+    """A bias table as {group name: its shares, ratio and interval, never share}; data quartiles
+    also carry the sample counts they hold (``samples_low``, ``samples_high``)."""
+    figures = [c for c in ("samples_low", "samples_high") if c in table.columns] + BIAS_FIGURES
+    return {row[key]: {c: row[c] for c in figures} for row in table.to_dict("records")}

@@ -14,7 +14,7 @@ def waste_sums(frame: pd.DataFrame) -> dict[str, float]:
     """Training seconds, bytes (down + up) and Wh of the participations in ``frame``."""
     return {
         "compute_s": float(frame["compute_s"].sum()),
-        "bytes": float((frame["bytes_down"] + frame["bytes_up"]).sum()),
+        "bytes": float((frame["download_bytes"] + frame["upload_bytes"]).sum()),
         "energy_wh": float(frame["energy_wh"].sum()),
     }
 
@@ -58,10 +58,10 @@ def waste_by_device_type(labelled: pd.DataFrame, wasted: pd.DataFrame, type_name
 
 
 def dropout_table(drops: pd.DataFrame) -> pd.DataFrame:
-    """Dropouts by ``cause`` and ``phase`` (only the pairs that occurred)."""
+    """Dropouts by ``dropout_cause`` and ``dropout_phase`` (only the pairs that occurred)."""
     if not len(drops):
-        return pd.DataFrame(columns=["cause", "phase", "dropouts"])
-    return drops.groupby(["cause", "phase"], observed=True).size().rename("dropouts").reset_index()
+        return pd.DataFrame(columns=["dropout_cause", "dropout_phase", "dropouts"])
+    return drops.groupby(["dropout_cause", "dropout_phase"], observed=True).size().rename("dropouts").reset_index()
 
 
 def _p90(values: pd.Series) -> float:
@@ -69,16 +69,15 @@ def _p90(values: pd.Series) -> float:
 
 
 def device_cost(labelled: pd.DataFrame) -> pd.DataFrame:
-    """Per device type: participations, battery % and MB p50/p90 per participation, mean Wh."""
+    """Per device type: participations, battery % and bytes (down + up) p50/p90 per participation, mean Wh."""
     return (
-        labelled.assign(megabytes=labelled["bytes"] / 1e6)
-        .groupby("device_type", observed=False)
+        labelled.groupby("device_type", observed=False)
         .agg(
             participations=("device", "size"),
             battery_pct_p50=("battery_used_pct", "median"),
             battery_pct_p90=("battery_used_pct", _p90),
-            megabytes_p50=("megabytes", "median"),
-            megabytes_p90=("megabytes", _p90),
+            bytes_p50=("bytes", "median"),
+            bytes_p90=("bytes", _p90),
             energy_wh_mean=("energy_wh", "mean"),
         )
         .reset_index()

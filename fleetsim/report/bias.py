@@ -54,7 +54,7 @@ def _chi_square(r: RunFolder) -> tuple[Table, dict[str, float | None]]:
          Column("chi_square", "Chi-square"), Column("dof", "Degrees of freedom", "int"), Column("p", "p-value", "p")],
         rows)
     b = r.summary["bias"]
-    return table, {"chi_square": b["chi_square"], "p": b["chi_square_p"]}
+    return table, {"chi_square": b["chi_square_device_type"], "p": b["chi_square_device_type_p"]}
 
 
 def bias_section(r: RunFolder) -> Section:
@@ -130,7 +130,6 @@ def participation_section(r: RunFolder) -> Section:
     gini_table = Table("gini", "Concentration of reports (summary.json)",
                        [Column("figure", "Figure", "text"), Column("value", "Value", "num")],
                        [["Gini coefficient (summary.json)", b["gini"]],
-                        ["Gini from the Lorenz curve above", b["lorenz_gini"]],
                         ["Share of reports from the busiest 10% of devices", b["top_tenth_share"]],
                         ["Coverage (devices with at least one report)", b["coverage"]]])
     never_chart, never_table, worst = _never(r)

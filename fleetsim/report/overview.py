@@ -9,7 +9,7 @@ from typing import Any
 from . import figures
 from .model import Cell, Chart, Column, Section, Table, Tile, format_value
 from .rundir import RunFolder
-from .text import STATUS_WORDS, STATUSES, num, opt, pct, seconds
+from .text import STATUS_WORDS, STATUSES, num, opt, pct, seconds, status_counts
 
 __all__ = ["run_section", "headline_section", "caution_section"]
 
@@ -19,7 +19,7 @@ def _workload(r: RunFolder) -> str:
     limit = "none" if not math.isfinite(work.execution_limit) else seconds(work.execution_limit)
     return (f"model {work.model_size / 1e6:.3g} MB down, update {work.upload_bytes / 1e6:.3g} MB up, "
             f"{work.epochs} epoch(s), needs {', '.join(work.requires) or 'no signal'}, "
-            f"battery at least {work.min_battery:g}%, OS limit {limit}")
+            f"battery at least {work.min_battery:g}%, execution limit {limit}")
 
 
 def _settings_rows(r: RunFolder) -> list[list[Any]]:
@@ -79,8 +79,10 @@ def _headline_chart(status_shares: dict[str, float], fractions: dict[str, float]
     for key, label in (("compute", "Compute"), ("bytes", "Data"), ("energy", "Energy")):
         chart_rows.append((label, [("committed", 1 - fractions[key]), ("wasted", fractions[key])]))
     chart_rows.append(("Devices", [("committed", coverage), ("fleet", 1 - coverage)]))
-    legend = {"committed": "committed rounds; work they used; devices that reported", "failed": "failed rounds",
-              "abandoned": "abandoned rounds", "outage": "rounds lost to an outage", "wasted": "wasted work",
+    legend = {"committed": "committed rounds; work they used; devices that reported",
+              "report_deadline": "rounds ended by the report deadline",
+              "selection_timeout": "rounds ended by the selection timeout",
+              "server_outage": "rounds cut by a server outage", "wasted": "wasted work",
               "fleet": "devices that never reported"}
     return Chart(figures.share_rows(chart_rows, legend, "f-headline"),
                  "Bars of round outcomes, used and wasted compute, data and energy, and coverage.",
@@ -91,12 +93,13 @@ def headline_section(r: RunFolder) -> Section:
     """Do the round settings deliver? Round outcomes, straggler waste and coverage (summary.json)."""
     ro, w, b = r.summary["rounds"], r.summary["waste"], r.summary["bias"]
     attempted = int(ro["attempted"])
-    status_shares = {k: int(ro[k]) / attempted if attempted else float("nan") for k in STATUSES}
+    counts = status_counts(ro)
+    status_shares = {k: counts[k] / attempted if attempted else float("nan") for k in STATUSES}
     fractions = {k: num(w[f"{k}_fraction"]) for k in ("compute", "bytes", "energy")}
     coverage = num(b["coverage"])
     rows = [
         ["Committed rounds per hour", Cell(opt(num(ro["committed_per_hour"])), "ratio")],
-        *[[f"Rounds {STATUS_WORDS[k]}", Cell(int(ro[k]), "int")] for k in STATUSES],
+        *[[f"Rounds {STATUS_WORDS[k]}", Cell(counts[k], "int")] for k in STATUSES],
         *[[f"Share of rounds {STATUS_WORDS[k]}", Cell(opt(v), "pct")] for k, v in status_shares.items()],
         *[[f"Straggler waste: share of {'data (bytes)' if k == 'bytes' else k}", Cell(opt(v), "pct")]
           for k, v in fractions.items()],
@@ -112,8 +115,8 @@ def headline_section(r: RunFolder) -> Section:
     ]
     answer = (
         f"{int(ro['committed']):,} of {attempted:,} rounds committed ({pct(status_shares['committed'])}, "
-        f"{format_value(ro['committed_per_hour'], 'ratio')} per hour); {pct(status_shares['failed'])} failed and "
-        f"{pct(status_shares['abandoned'])} were abandoned; {pct(fractions['compute'])} of device compute was "
+        f"{format_value(ro['committed_per_hour'], 'ratio')} per hour); {pct(status_shares['selection_timeout'])} were "
+        f"ended by the selection timeout and {pct(status_shares['report_deadline'])} by the report deadline; {pct(fractions['compute'])} of device compute was "
         f"wasted; {pct(coverage)} of devices reported at least once."
     )
     return Section("headline", "Do the round settings deliver?", answer,

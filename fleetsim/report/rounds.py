@@ -9,7 +9,7 @@ import numpy as np
 from . import figures
 from .model import Chart, Column, Section, Table
 from .rundir import RunFolder
-from .text import STATUSES, column, instant, num, pct, seconds
+from .text import STATUS_WORDS, STATUSES, column, instant, num, pct, seconds
 
 __all__ = ["over_time_section", "durations_section", "warm_hours", "warm_note"]
 
@@ -30,26 +30,39 @@ def warm_note(r: RunFolder, warm: int) -> str:
 
 
 def _present(r: RunFolder) -> list[str]:
-    """Round statuses shown: outage only when a round was lost to one."""
+    """Round statuses shown: server outages only when a round was lost to one."""
     hourly = r.tables["hourly"]
-    return [k for k in STATUSES if k in hourly.columns and (k != "outage" or hourly[k].sum() > 0)]
+    return [k for k in STATUSES if k in hourly.columns and (k != "server_outage" or hourly[k].sum() > 0)]
 
 
-def _tables(r: RunFolder, present: list[str]) -> tuple[Table, Table]:
+def _eligible_by_region(r: RunFolder) -> dict[str, np.ndarray]:
+    """Mean eligible devices per hour, by region (tables/hourly_eligible_by_region.csv), in hour order."""
+    long = r.tables["hourly_eligible_by_region"]
+    n_hours = len(r.tables["hourly"])
+    out = {}
+    for name in r.region_names:
+        rows = long[long["region"] == name].sort_values("hour")
+        values = np.zeros(n_hours)
+        values[rows["hour"].to_numpy(dtype=np.int64)] = rows["eligible"].to_numpy(dtype=float)
+        out[name] = values
+    return out
+
+
+def _tables(r: RunFolder, present: list[str], eligible: dict[str, np.ndarray]) -> tuple[Table, Table]:
     hourly, daily = r.tables["hourly"], r.tables["daily"]
-    columns = [Column("hour_utc", "Hour (UTC)", "text")] + [Column(k, k, "int") for k in present]
-    columns += [Column(f"eligible:{name}", f"eligible: {name}", "num") for name in r.region_names]
+    columns = [Column("hour_utc", "Hour (UTC)", "text")] + [Column(k, STATUS_WORDS[k], "int") for k in present]
+    columns += [Column(f"eligible_{name}", f"eligible: {name}", "num") for name in r.region_names]
     columns.append(Column("eligible", "eligible: all", "num"))
     rows = [[record["hour_utc"], *[int(record[k]) for k in present],
-             *[float(record[f"eligible:{n}"]) for n in r.region_names], float(record["eligible"])]
-            for record in hourly.to_dict("records")]
+             *[float(eligible[n][h]) for n in r.region_names], float(record["eligible"])]
+            for h, record in enumerate(hourly.to_dict("records"))]
     hourly_table = Table("over-time", "Rounds closed and mean eligible devices, per hour", columns, rows,
-                         detail=True, source="tables/hourly.csv")
+                         detail=True, source="tables/hourly.csv, tables/hourly_eligible_by_region.csv")
     day_rows = [[record["day_utc"], *[int(record[k]) for k in present], float(record["eligible_min"]),
                  float(record["eligible_mean"]), float(record["eligible_max"])] for record in daily.to_dict("records")]
     day_table = Table("over-time-days", "Per day (24 hours from the horizon start): rounds closed and eligible "
                       "devices (tables/daily.csv)",
-                      [Column("day", "Day from", "text"), *[Column(k, k, "int") for k in present],
+                      [Column("day", "Day from", "text"), *[Column(k, STATUS_WORDS[k], "int") for k in present],
                        Column("eligible_min", "eligible: lowest hour", "num"),
                        Column("eligible_mean", "eligible: mean", "num"),
                        Column("eligible_max", "eligible: highest hour", "num")], day_rows)
@@ -82,7 +95,7 @@ def over_time_section(r: RunFolder) -> Section:
     hourly = r.tables["hourly"]
     present = _present(r)
     statuses = {k: column(hourly, k) for k in present}
-    eligible = {name: column(hourly, f"eligible:{name}") for name in r.region_names}
+    eligible = _eligible_by_region(r)
     total = column(hourly, "eligible")
     warm = warm_hours(r)
     chart = Chart(figures.rounds_over_time(len(hourly), instant(r.summary["horizon_start"]), statuses, eligible,
@@ -91,7 +104,7 @@ def over_time_section(r: RunFolder) -> Section:
                   "Top: rounds by the hour they closed. Below: eligible devices (mean of the 15-minute counts in "
                   "each hour), one panel per region on a shared scale." + warm_note(r, warm))
     answer = _over_time_answer(r, statuses["committed"], total, eligible, warm)
-    day_table, hourly_table = _tables(r, present)
+    day_table, hourly_table = _tables(r, present, eligible)
     return Section("over-time", "When do rounds commit, and who is eligible then?", answer, charts=[chart],
                    tables=[day_table, hourly_table])
 
@@ -101,13 +114,13 @@ def _durations_answer(r: RunFolder, selection: np.ndarray, report: np.ndarray) -
     timeout, deadline = float(settings.selection_timeout), float(settings.report_deadline)
     sel, rep = s["selection_s"], s["report_s"]
     if not selection.size:
-        return (f"Every round was abandoned at the selection timeout ({seconds(timeout)}) before enough devices "
+        return (f"Every round was ended by the selection timeout ({seconds(timeout)}) before enough devices "
                 "were accepted, so no round reached its report phase.")
-    abandoned = int(s["abandoned"])
+    timed_out = int(s["ended_by"]["selection_timeout"])
     answer = (
         f"Selection takes {seconds(sel['p50'])} at the median and {seconds(sel['p90'])} at p90 "
         f"(timeout {seconds(timeout)}, reached by {pct(num(s['selection_at_timeout']))} of rounds that went ahead"
-        + (f", and by every one of the {abandoned:,} abandoned rounds); " if abandoned else "); ")
+        + (f", and by every one of the {timed_out:,} rounds it ended); " if timed_out else "); ")
     )
     if report.size:
         return answer + (f"committed rounds gather their reports in {seconds(rep['p50'])} at the median, "
@@ -120,11 +133,11 @@ def durations_section(r: RunFolder) -> Section:
     rounds = r.tables["rounds"]
     s = r.summary["rounds"]
     status = rounds["status"]
-    selection = rounds.loc[status != "abandoned", "selection_s"].to_numpy(dtype=float)
+    selection = rounds.loc[status != "selection-timeout", "selection_s"].to_numpy(dtype=float)
     report = rounds.loc[status == "committed", "report_s"].to_numpy(dtype=float)
     timeout, deadline = float(r.config.rounds.selection_timeout), float(r.config.rounds.report_deadline)
     rows = [[label, int(values.size), pcts["p50"], pcts["p90"], pcts["p99"]]
-            for label, values, pcts in (("Selection time (rounds not abandoned)", selection, s["selection_s"]),
+            for label, values, pcts in (("Selection time (rounds not ended by the timeout)", selection, s["selection_s"]),
                                         ("Report time (committed rounds)", report, s["report_s"]))]
     table = Table("durations", "Round duration percentiles, seconds (summary.json; distributions: tables/rounds.csv)",
                   [Column("measure", "Measure", "text"), Column("rounds", "Rounds", "int"),

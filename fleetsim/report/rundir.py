@@ -26,24 +26,26 @@ __all__ = ["RunFolder", "read_run_folder"]
 
 # Columns holding names (from the fleet file or the metrics): read as text, never as numbers
 # or missing values, so a region called "NA" or "1" stays exactly what the fleet file says.
-_TEXT_COLUMNS = {"device_type", "region", "data_quartile", "cause", "phase", "status", "hour_utc", "opened_utc",
+_TEXT_COLUMNS = {"device_type", "region", "data_quartile", "cause", "dropout_cause", "dropout_phase", "status",
+                 "hour_utc", "opened_utc",
                  "day_utc", "grouping", "scope"}
 
 # Every table the report reads, with the columns it needs.
 _TABLE_COLUMNS: dict[str, tuple[str, ...]] = {
-    "hourly": ("hour", "hour_utc", "committed", "failed", "abandoned", "eligible", "checkins_per_s",
-               "accepted", "peak_working"),
+    "hourly": ("hour", "hour_utc", "committed", "selection_timeout", "report_deadline", "eligible",
+               "checkins_per_s", "accepted", "peak_working"),
+    "hourly_eligible_by_region": ("hour", "hour_utc", "region", "eligible"),
     "rounds": ("round", "status", "selection_s", "report_s", "duration_s"),
     "waste_by_cause": ("cause", "compute_s", "bytes", "energy_wh", "participations", "compute_share"),
     "waste_by_device_type": ("device_type", "compute_s", "wasted_compute_s", "bytes", "wasted_bytes",
                              "energy_wh", "wasted_energy_wh", "compute_fraction", "bytes_fraction",
                              "energy_fraction"),
     "participation_counts": ("reports", "devices"),
-    "dropouts": ("cause", "phase", "dropouts"),
+    "dropouts": ("dropout_cause", "dropout_phase", "dropouts"),
     "device_cost": ("device_type", "participations", "battery_pct_p50", "battery_pct_p90",
-                    "megabytes_p50", "megabytes_p90", "energy_wh_mean"),
-    "daily": ("day", "day_utc", "committed", "failed", "abandoned", "eligible_min", "eligible_mean",
-              "eligible_max"),
+                    "bytes_p50", "bytes_p90", "energy_wh_mean"),
+    "daily": ("day", "day_utc", "committed", "selection_timeout", "report_deadline", "eligible_min",
+              "eligible_mean", "eligible_max"),
     "chi_square": ("grouping", "groups", "reports", "statistic", "dof", "p"),
     "lorenz": ("device_share", "report_share"),
     "task_survival": SURVIVAL_COLUMNS,
@@ -63,12 +65,13 @@ _EVENT_COLUMNS = ("device_type", "outcome", "accepted_s", "ended_s")
 
 _SUMMARY_KEYS = (
     "scenario", "seed", "config_hash", "policy", "devices", "horizon_start", "simulated_hours", "caution",
-    "rounds.attempted", "rounds.committed", "rounds.failed", "rounds.abandoned", "rounds.outage",
+    "rounds.attempted", "rounds.committed", "rounds.ended_by.selection_timeout",
+    "rounds.ended_by.report_deadline", "rounds.ended_by.server_outage",
     "rounds.committed_per_hour", "rounds.selection_s", "rounds.report_s", "rounds.duration_s",
     "rounds.selection_at_timeout", "rounds.eligible_correlation",
     "participations.accepted", "participations.used_reports", "participations.task_s",
     "waste.compute_fraction", "waste.bytes_fraction", "waste.energy_fraction",
-    "bias.coverage", "bias.gini", "bias.chi_square", "bias.chi_square_p", "bias.lorenz_gini",
+    "bias.coverage", "bias.gini", "bias.chi_square_device_type", "bias.chi_square_device_type_p",
     "bias.top_tenth_share",
     "load.peak_working", "load.mean_working", "load.checkins_per_s_peak_hour",
 )
@@ -185,9 +188,9 @@ def read_run_folder(folder: str | Path) -> RunFolder:
     config = _read_config(path / "config.json", path)
     tables = {name: _read_table(path / "tables" / f"{name}.csv", cols) for name, cols in _TABLE_COLUMNS.items()}
     _check_events(path / "events.parquet")
-    hourly = tables["hourly"]
     regions = list(tables["bias_by_region"]["region"])
-    lacking = [f"eligible:{r}" for r in regions if f"eligible:{r}" not in hourly.columns]
+    lacking = sorted(set(regions) - set(tables["hourly_eligible_by_region"]["region"]))
     if lacking:
-        raise FleetsimError(f"{path / 'tables' / 'hourly.csv'}: lacks column(s) {', '.join(lacking)}")
+        raise FleetsimError(f"{path / 'tables' / 'hourly_eligible_by_region.csv'}: lacks region(s) "
+                            f"{', '.join(lacking)}")
     return RunFolder(path=path, summary=summary, config=config, tables=tables)

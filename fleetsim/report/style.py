@@ -21,9 +21,9 @@ __all__ = ["COLOURS", "MEANINGS", "INK", "MUTED", "figure", "svg_of", "short"]
 
 COLOURS = {
     "committed": "#009E73",  # bluish green
-    "failed": "#D55E00",     # vermillion
-    "abandoned": "#E69F00",  # orange
-    "outage": "#000000",     # black
+    "report_deadline": "#D55E00",    # vermillion
+    "selection_timeout": "#E69F00",  # orange
+    "server_outage": "#000000",      # black
     "eligible": "#56B4E9",   # sky blue
     "accepted": "#0072B2",   # blue
     "wasted": "#CC79A7",     # reddish purple
@@ -33,9 +33,9 @@ COLOURS = {
 
 MEANINGS = {
     "committed": "reports used by a committed round, and the rounds that committed",
-    "failed": "rounds that closed with too few reports",
-    "abandoned": "rounds abandoned at the selection timeout with too few devices",
-    "outage": "rounds lost to a server outage",
+    "report_deadline": "rounds the report deadline ended with too few reports",
+    "selection_timeout": "rounds the selection timeout ended with too few devices accepted",
+    "server_outage": "rounds cut by a server outage",
     "eligible": "eligible devices (and the check-ins they make)",
     "accepted": "accepted devices and the tasks they run",
     "wasted": "device work no committed round used (straggler waste)",

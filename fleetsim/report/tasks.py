@@ -82,7 +82,7 @@ def survival_section(r: RunFolder) -> Section:
     minutes = _by_type(r.tables["task_survival_by_minute"])
     compact, bands = _survival_tables(minutes)
     drops = r.tables["dropouts"]
-    drop_columns = [Column("cause", "Cause", "text"), Column("phase", "Phase", "text"),
+    drop_columns = [Column("dropout_cause", "Cause", "text"), Column("dropout_phase", "Phase", "text"),
                     Column("dropouts", "Dropouts", "int")]
     drop_table = Table("dropouts", "Dropouts by cause and phase (tables/dropouts.csv)", drop_columns,
                        records(drops, drop_columns))
@@ -93,7 +93,8 @@ def survival_section(r: RunFolder) -> Section:
         charts.append(Chart(
             figures.survival(drawn, "f-survival"),
             "Kaplan-Meier curves of the share of tasks not yet dropped out, one panel per device type.",
-            "Time runs from acceptance; a task that reported, was late or was stopped at close counts as censored. "
+            "Time runs from acceptance; a task that reported (on time or late) or was stopped at close counts as "
+            "censored. "
             f"Curves end where fewer than {MIN_AT_RISK} tasks remain at risk. Band: pointwise 95% interval "
             "(Greenwood variance on the log(-log) scale).",
         ))
@@ -103,7 +104,9 @@ def survival_section(r: RunFolder) -> Section:
 
 def cost_section(r: RunFolder) -> Section:
     """What does taking part cost a device? Battery and data per participation by device type."""
-    cost = r.tables["device_cost"]
+    # Shown in MB (10**6 bytes); the table holds bytes.
+    cost = r.tables["device_cost"].assign(megabytes_p50=lambda t: t["bytes_p50"] / 1e6,
+                                          megabytes_p90=lambda t: t["bytes_p90"] / 1e6)
     types = list(cost["device_type"])
     battery50, battery90 = column(cost, "battery_pct_p50"), column(cost, "battery_pct_p90")
     mb50, mb90 = column(cost, "megabytes_p50"), column(cost, "megabytes_p90")

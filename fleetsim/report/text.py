@@ -16,11 +16,19 @@ import pandas as pd
 from .model import Column, format_value
 
 __all__ = ["num", "opt", "pct", "seconds", "hour_text", "instant", "column", "records", "p_text",
-           "STATUSES", "STATUS_WORDS", "GROUPING_LABELS"]
+           "STATUSES", "STATUS_WORDS", "GROUPING_LABELS", "status_counts"]
 
-STATUSES = ("committed", "failed", "abandoned", "outage")
-STATUS_WORDS = {"committed": "committed", "failed": "failed", "abandoned": "abandoned",
-                "outage": "lost to a server outage"}
+STATUSES = ("committed", "selection_timeout", "report_deadline", "server_outage")
+"""Round statuses as the hourly and daily tables name their columns (``-`` written ``_``)."""
+STATUS_WORDS = {"committed": "committed", "selection_timeout": "ended by the selection timeout",
+                "report_deadline": "ended by the report deadline", "server_outage": "cut by a server outage"}
+
+
+def status_counts(rounds: dict[str, Any]) -> dict[str, int]:
+    """Rounds by status (keys of STATUSES) from summary.json's ``rounds`` part."""
+    return {"committed": int(rounds["committed"]), **{k: int(v) for k, v in rounds["ended_by"].items()}}
+
+
 GROUPING_LABELS = {"device_type": "device type", "region": "region", "data_quartile": "data-size quartile"}
 
 

@@ -72,7 +72,7 @@ def rounds_over_time(
             # One filled step patch per status (hundreds of bars would make a heavy SVG).
             top.stairs(bottom + counts, edges, baseline=bottom, fill=True, color=COLOURS[status], linewidth=0)
             bottom = bottom + counts
-            handles.append(Patch(color=COLOURS[status], label=f"{status} rounds"))
+            handles.append(Patch(color=COLOURS[status], label=f"{status.replace('_', ' ')} rounds"))
         top.set_ylabel("rounds closed\nper hour")
         top.legend(handles=handles, loc="upper left", ncols=len(handles), bbox_to_anchor=(0, 1.18))
         time_axis(top, n_hours, start, labels=False)
