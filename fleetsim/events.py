@@ -16,8 +16,8 @@ import numpy as np
 import pandas as pd
 
 __all__ = [
-    "OUTCOMES", "CAUSES", "PHASES", "WASTE_CAUSES", "ROUND_STATUS", "EventLog", "round_status", "outcome_codes", "json_key",
-    "waste_codes",
+    "OUTCOMES", "CAUSES", "PHASES", "WASTE_CAUSES", "ROUND_STATUS", "PARTICIPATION_COLUMNS", "ROUND_COLUMNS",
+    "EventLog", "round_status", "outcome_codes", "json_key", "waste_codes",
 ]
 
 OUTCOMES = ("on-time", "late", "stopped", "dropout")

@@ -46,8 +46,9 @@ ENGINE_SEEDS = tuple(range(101, 113))  # the engine is fast: more replicates, mo
 WRONG_SEEDS = tuple(range(201, 207))  # replicates of a deliberately wrong engine
 
 # Scenario "diurnal": the bundled fleet cut down to 1,000 devices over the day New York
-# springs forward (2026-03-08; IANA tz database), small rounds so that rounds committed, ended by the
-# report deadline and ended by the selection timeout all occur, and a crash hazard and execution limit high enough to be seen.
+# springs forward (2026-03-08; IANA tz database), small rounds so that rounds committed, ended
+# by the report deadline and ended by the selection timeout all occur, and a crash hazard and
+# execution limit high enough to be seen.
 DIURNAL = [
     "fleet.devices=1000",
     "horizon.start=2026-03-08T00:00:00Z",
@@ -230,7 +231,8 @@ def test_oracle_runs_follow_the_round_protocol(diurnal_oracle):
     assert ((rounds["selected_s"] - rounds["opened_s"]) <= config.rounds.selection_timeout + 1e-6).all()
     assert (parts["ended_s"] >= parts["accepted_s"]).all()
     assert set(parts["outcome"]) == {"on-time", "late", "stopped", "dropout"}
-    assert {"crash", "execution-limit", "idle-ended", "charging-ended", "unmetered-ended"} <= set(parts["dropout_cause"])
+    seen = set(parts["dropout_cause"])
+    assert {"crash", "execution-limit", "idle-ended", "charging-ended", "unmetered-ended"} <= seen
     per_round = parts.groupby(["seed", "round"]).size()
     accepted = rounds.set_index(["seed", "round"])["accepted"]
     assert per_round.reindex(accepted.index, fill_value=0).equals(accepted.astype(per_round.dtype))

@@ -25,7 +25,6 @@ if TYPE_CHECKING:
 __all__ = ["sweep", "compare"]
 
 
-
 def _base(file: Path | None, overrides: list[str], devices: int | None, days: float | None,
           stress: Path | None) -> FleetFile:
     """Validate the fleet file as ``fleetsim run`` would, then keep its raw mapping for the cells."""
@@ -94,11 +93,12 @@ def sweep(
     stress: Path | None = typer.Option(
         None, "--stress", help="YAML file with a 'disruptions:' list added to every cell."
     ),
-    maximize: str | None = typer.Option(None, "--maximize", help="Metric the recommendation maximises "
-                                        "(default rounds.committed_per_hour)."),
-    minimize: str | None = typer.Option(None, "--minimize", help="Metric the recommendation minimises instead."),
+    maximise: str | None = typer.Option(None, "--maximise", help="Metric (a study column, e.g. "
+                                        "rounds_committed_per_hour, the default) the recommendation maximises."),
+    minimise: str | None = typer.Option(None, "--minimise", help="Metric the recommendation minimises instead."),
     limit: list[str] = typer.Option([], "--limit", help="A bound the recommended cell's mean must meet: "
-                                    "METRIC<=VALUE or METRIC>=VALUE (repeatable; VALUE may be a percentage)."),
+                                    "METRIC<=VALUE or METRIC>=VALUE, e.g. waste_compute_fraction<=0.3 "
+                                    "(repeatable; VALUE may be a percentage)."),
     workers: int = typer.Option(2, "--workers", help="Local worker processes (1 runs in this process)."),
     cluster: str | None = typer.Option(None, "--cluster", help="Run on the Dask scheduler at this address "
                                        "(e.g. tcp://127.0.0.1:8786) instead of local processes."),
@@ -107,26 +107,27 @@ def sweep(
     plot_format: str = typer.Option("png", "--plot-format", help="png, svg or both."),
     force: bool = typer.Option(False, "--force", help=_FORCE_HELP),
 ) -> None:
-    """Run a grid of settings x seeds; write per-run and per-cell tables, the Pareto front,
+    """Run a grid of cells x seeds; write per-run and per-cell tables, the Pareto front,
     a recommendation and plots to --out."""
     from ..study.executors import make_executor
     from ..study.recommend import Objective, parse_limit
     from ..study.settings import parse_axis
-    from ..study.sweep import DEFAULT_OBJECTIVE, default_heatmaps, render_sweep, run_sweep, write_sweep
+    from ..study.sweep import DEFAULT_OBJECTIVE, run_sweep
+    from ..study.sweep_output import default_heatmaps, render_sweep, write_sweep
 
     try:
-        if maximize and minimize:
-            raise ConfigError(["--maximize and --minimize: give one objective, not both"])
+        if maximise and minimise:
+            raise ConfigError(["--maximise and --minimise: give one objective, not both"])
         if seeds < 1:
             raise ConfigError([f"--seeds {seeds}: expected at least 1"])
         if plot_format not in ("png", "svg", "both"):
-            raise ConfigError([f"--plot-format {plot_format!r}: expected png, svg or both"])
+            raise ConfigError([f"--plot-format {plot_format}: expected png, svg or both"])
         axes = [parse_axis(text) for text in vary]
         if not axes:
             raise ConfigError(
                 ["--vary: give at least one key to vary, e.g. --vary rounds.over_selection=1.1,1.3,1.5"]
             )
-        objective = (Objective(maximize, True) if maximize else Objective(minimize, False) if minimize
+        objective = (Objective(maximise, True) if maximise else Objective(minimise, False) if minimise
                      else DEFAULT_OBJECTIVE)
         limits = [parse_limit(text) for text in limit]
         executor = make_executor(workers, cluster)
@@ -149,6 +150,7 @@ def sweep(
                f"and {len(result.heatmap_metrics)} heat maps under {out}/heatmaps/ ({kinds}; "
                f"{len(written)} files)")
 
+
 def compare(
     file: Path | None = typer.Argument(None, help=FILE_HELP, show_default=False),
     baseline: list[str] = typer.Option(
@@ -167,8 +169,9 @@ def compare(
     days: float | None = typer.Option(None, "--days", help="Horizon length in days (overrides the file)."),
     stress: Path | None = typer.Option(None, "--stress", help="YAML file with a 'disruptions:' list; both arms "
                                        "also run with it added, and each condition is compared."),
-    detect: list[str] = typer.Option([], "--detect", help="METRIC=CHANGE: how many seeds would detect this change "
-                                     "(a number, or a percentage of the baseline mean; repeatable)."),
+    detect: list[str] = typer.Option([], "--detect", help="METRIC=CHANGE: how many seeds would detect this change, "
+                                     "e.g. rounds_committed_per_hour=5% (a number, or a percentage of the "
+                                     "baseline mean; repeatable)."),
     power: float = typer.Option(0.8, "--power", help="Power for the seeds-needed figures."),
     workers: int = typer.Option(2, "--workers", help="Local worker processes (1 runs in this process)."),
     cluster: str | None = typer.Option(None, "--cluster", help="Run on the Dask scheduler at this address."),
@@ -176,8 +179,9 @@ def compare(
     force: bool = typer.Option(False, "--force", help=_FORCE_HELP),
 ) -> None:
     """Run a baseline and a candidate under the same seeds; paired differences, intervals and
-    a verdict per metric."""
-    from ..study.compare import Arm, parse_detect, render_compare, run_compare, write_compare
+    a verdict code per metric (better, worse, higher, lower, no-detectable-change, too-few-seeds)."""
+    from ..study.compare import Arm, parse_detect, run_compare
+    from ..study.compare_output import render_compare, write_compare
     from ..study.executors import make_executor
 
     try:

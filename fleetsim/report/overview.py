@@ -116,8 +116,8 @@ def headline_section(r: RunFolder) -> Section:
     answer = (
         f"{int(ro['committed']):,} of {attempted:,} rounds committed ({pct(status_shares['committed'])}, "
         f"{format_value(ro['committed_per_hour'], 'ratio')} per hour); {pct(status_shares['selection_timeout'])} were "
-        f"ended by the selection timeout and {pct(status_shares['report_deadline'])} by the report deadline; {pct(fractions['compute'])} of device compute was "
-        f"wasted; {pct(coverage)} of devices reported at least once."
+        f"ended by the selection timeout and {pct(status_shares['report_deadline'])} by the report deadline; "
+        f"{pct(fractions['compute'])} of device compute was wasted; {pct(coverage)} of devices reported at least once."
     )
     return Section("headline", "Do the round settings deliver?", answer,
                    charts=[_headline_chart(status_shares, fractions, coverage)], tables=[table], tiles=tiles)

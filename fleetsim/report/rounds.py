@@ -136,9 +136,9 @@ def durations_section(r: RunFolder) -> Section:
     selection = rounds.loc[status != "selection-timeout", "selection_s"].to_numpy(dtype=float)
     report = rounds.loc[status == "committed", "report_s"].to_numpy(dtype=float)
     timeout, deadline = float(r.config.rounds.selection_timeout), float(r.config.rounds.report_deadline)
-    rows = [[label, int(values.size), pcts["p50"], pcts["p90"], pcts["p99"]]
-            for label, values, pcts in (("Selection time (rounds not ended by the timeout)", selection, s["selection_s"]),
-                                        ("Report time (committed rounds)", report, s["report_s"]))]
+    measures = (("Selection time (rounds not ended by the timeout)", selection, s["selection_s"]),
+                ("Report time (committed rounds)", report, s["report_s"]))
+    rows = [[label, int(values.size), pcts["p50"], pcts["p90"], pcts["p99"]] for label, values, pcts in measures]
     table = Table("durations", "Round duration percentiles, seconds (summary.json; distributions: tables/rounds.csv)",
                   [Column("measure", "Measure", "text"), Column("rounds", "Rounds", "int"),
                    Column("p50", "p50 (s)"), Column("p90", "p90 (s)"), Column("p99", "p99 (s)")], rows)

@@ -1,4 +1,4 @@
-"""Studies: sweeps over settings, paired comparisons, stress tests and recommendations.
+"""Studies: sweeps over a grid of cells, paired comparisons, stress tests and recommendations.
 
 A study only calls the public :func:`fleetsim.simulate` (in worker processes or on a Dask
 cluster) and reads the summaries it returns. See docs/studies.md.
@@ -13,24 +13,39 @@ From Python::
     result.recommendation.label
 """
 
-from .compare import Arm, ComparisonResult, Detection, parse_detect, render_compare, run_compare, write_compare
+from .compare import Arm, ComparisonResult, Detection, parse_detect, run_compare
+from .compare_output import HEADLINE, comparison_record, render_compare, write_compare
 from .executors import DaskCluster, InProcess, Job, LocalProcesses, make_executor, run_one
+from .names import renamed, resolve_metric
 from .pareto import dominates, pareto_front
 from .recommend import Limit, Objective, Recommendation, parse_limit, recommend
 from .settings import Axis, Cell, FleetFile, grid_cells, parse_axis, read_stress
 from .stats import Interval, mean_interval, paired_interval, paired_power, seeds_needed
-from .store import RunStore, run_key
-from .sweep import SweepResult, render_sweep, run_sweep, write_sweep
-from .table import PARETO_OBJECTIVES, WORST_REPRESENTATION, direction_of, flatten_summary
+from .store import RunStore, engine_fingerprint, run_key, source_fingerprint
+from .sweep import DEFAULT_OBJECTIVE, SweepResult, run_sweep
+from .sweep_output import render_sweep, study_record, write_sweep
+from .table import (
+    PARETO_OBJECTIVES,
+    WORST_REPRESENTATION,
+    WORST_REPRESENTATION_TYPE,
+    column_name,
+    direction_of,
+    flatten_summary,
+)
+from .verdicts import CONDITIONS, VERDICTS, Condition
 
 __all__ = [
     "Arm",
     "Axis",
+    "CONDITIONS",
     "Cell",
     "ComparisonResult",
+    "Condition",
+    "DEFAULT_OBJECTIVE",
     "DaskCluster",
     "Detection",
     "FleetFile",
+    "HEADLINE",
     "InProcess",
     "Interval",
     "Job",
@@ -41,9 +56,14 @@ __all__ = [
     "Recommendation",
     "RunStore",
     "SweepResult",
+    "VERDICTS",
     "WORST_REPRESENTATION",
+    "WORST_REPRESENTATION_TYPE",
+    "column_name",
+    "comparison_record",
     "direction_of",
     "dominates",
+    "engine_fingerprint",
     "flatten_summary",
     "grid_cells",
     "make_executor",
@@ -56,13 +76,17 @@ __all__ = [
     "parse_limit",
     "read_stress",
     "recommend",
+    "renamed",
     "render_compare",
     "render_sweep",
+    "resolve_metric",
     "run_compare",
     "run_key",
     "run_one",
     "run_sweep",
     "seeds_needed",
+    "source_fingerprint",
+    "study_record",
     "write_compare",
     "write_sweep",
 ]

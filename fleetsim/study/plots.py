@@ -14,7 +14,7 @@ import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
-from .table import WORST_REPRESENTATION, direction_of
+from .table import PARETO_OBJECTIVES, direction_of
 
 __all__ = ["frontier_plot", "heat_map"]
 
@@ -36,9 +36,10 @@ def frontier_plot(result: Any, path: Path, fmt: str = "png") -> None:
     """Committed rounds per hour (x) against compute waste fraction (y) for every cell, coloured
     by worst representation; front cells outlined and numbered, the recommendation starred.
     Bars are 95% intervals across seeds."""
-    x, xl, xh = _stats(result, "rounds.committed_per_hour")
-    y, yl, yh = _stats(result, "waste.compute_fraction")
-    c, _, _ = _stats(result, WORST_REPRESENTATION)
+    (throughput, _), (waste, _), (representation, _) = PARETO_OBJECTIVES
+    x, xl, xh = _stats(result, throughput)
+    y, yl, yh = _stats(result, waste)
+    c, _, _ = _stats(result, representation)
     figure = Figure(figsize=(7.5, 5.5), layout="constrained")
     FigureCanvasAgg(figure)
     ax = figure.subplots()
@@ -47,7 +48,7 @@ def frontier_plot(result: Any, path: Path, fmt: str = "png") -> None:
     on_front = np.array([cell.index in result.front for cell in result.grid])
     colour = np.where(np.isfinite(c), c, 0.0)
     points = ax.scatter(x[~on_front], y[~on_front], c=colour[~on_front], cmap="viridis", vmin=0, vmax=1,
-                        s=36, alpha=0.6, zorder=2, label="other settings")
+                        s=36, alpha=0.6, zorder=2, label="other cells")
     ax.scatter(x[on_front], y[on_front], c=colour[on_front], cmap="viridis", vmin=0, vmax=1,
                s=90, edgecolors="black", linewidths=1.2, zorder=3, label="Pareto front")
     for i, cell in enumerate(result.grid):
@@ -62,7 +63,7 @@ def frontier_plot(result: Any, path: Path, fmt: str = "png") -> None:
     _fit_to_means(ax, x, y)
     ax.set_xlabel("committed rounds per hour (higher is better)")
     ax.set_ylabel("straggler waste, fraction of compute (lower is better)")
-    ax.set_title(f"{len(result.grid)} settings x {len(result.seeds)} seeds; numbers are cell indices; "
+    ax.set_title(f"{len(result.grid)} cells x {len(result.seeds)} seeds; numbers are cell indices; "
                  "bars are 95% intervals (clipped to the view)", fontsize=9)
     ax.legend(loc="best", fontsize=8)
     ax.grid(True, alpha=0.3)

@@ -1,4 +1,4 @@
-"""Choosing one setting of a sweep: an objective, limits, and the reasons for the choice.
+"""Choosing one cell of a sweep: an objective, limits, and the reasons for the choice.
 
 The rule, applied to the per-cell means over seeds:
 
@@ -33,19 +33,19 @@ class Objective:
     """The metric a recommendation optimises and whether it is maximised."""
 
     metric: str
-    maximize: bool = True
+    maximise: bool = True
 
     @property
     def verb(self) -> str:
-        return "highest" if self.maximize else "lowest"
+        return "highest" if self.maximise else "lowest"
 
     def better(self, a: float, b: float) -> bool:
-        return a > b if self.maximize else a < b
+        return a > b if self.maximise else a < b
 
 
 @dataclass(frozen=True)
 class Limit:
-    """A bound a recommended setting's mean must meet: ``metric <= value`` or ``>=``."""
+    """A bound a recommended cell's mean must meet: ``metric <= value`` or ``>=``."""
 
     metric: str
     operator: Literal["<=", ">="]
@@ -75,7 +75,7 @@ def parse_limit(text: str) -> Limit:
     match = _LIMIT_RE.match(text)
     if not match:
         raise ConfigError(
-            [f"--limit {text!r}: expected METRIC<=VALUE or METRIC>=VALUE, e.g. waste.compute_fraction<=0.3"]
+            [f"--limit {text!r}: expected METRIC<=VALUE or METRIC>=VALUE, e.g. waste_compute_fraction<=0.3"]
         )
     metric, operator, raw = match.groups()
     try:
@@ -117,7 +117,7 @@ class Recommendation:
                     for k, v in vars(i).items()}
 
         return {
-            "objective": {"metric": self.objective.metric, "maximize": self.objective.maximize},
+            "objective": {"metric": self.objective.metric, "maximise": self.objective.maximise},
             "limits": [{"metric": lim.metric, "operator": lim.operator, "value": lim.value} for lim in self.limits],
             "cell": self.cell,
             "label": self.label,
@@ -146,11 +146,14 @@ def recommend(
     limits: list[Limit],
     front: set[int] | None = None,
 ) -> Recommendation:
-    """(Long because it reads one study's steps in order: splitting it would scatter them.) Pick a cell by the rule in the module docstring.
+    """Pick a cell by the rule in the module docstring.
 
     ``cells``: one row per cell with columns ``cell``, ``label`` and the mean of each metric
     (named as the metric); ``runs``: one row per cell and seed with ``cell``, ``seed`` and the
     metrics. ``front``: cells on the Pareto front (for the reasons given).
+
+    Long because it reads the rule's steps in order (limits, best, reasons, runner-up):
+    splitting it would scatter them.
     """
     metric = objective.metric
     means = cells.set_index("cell")
@@ -165,7 +168,7 @@ def recommend(
                 ok = False
         if ok:
             feasible.append(int(cell))  # type: ignore[arg-type]
-    sign = 1.0 if objective.maximize else -1.0
+    sign = 1.0 if objective.maximise else -1.0
     # Best first; among equal means, front cells first, then the lower cell index.
     on_front = front or set()
     ranked = sorted(feasible, key=lambda c: (-sign * float(means.at[c, metric]), c not in on_front, c))
@@ -177,10 +180,10 @@ def recommend(
                          feasible=sorted(feasible))
     total = len(means)
     if not ranked:
-        rec.reasons.append(f"no setting meets every limit ({total} settings tried)")
+        rec.reasons.append(f"no cell meets every limit ({total} cells tried)")
         for text, count in failures.items():
             if count:
-                rec.reasons.append(f"{count} of {total} settings miss {text}")
+                rec.reasons.append(f"{count} of {total} cells miss {text}")
         closest = _closest(means, limits)
         if closest is not None:
             cell, worst = closest
@@ -198,7 +201,7 @@ def recommend(
     rec.reasons.append(
         f"{objective.verb} mean {metric}: {_fmt(rec.value.mean)} "
         f"(95% interval {_fmt(rec.value.low)} to {_fmt(rec.value.high)}, {rec.value.n} seeds) "
-        f"among the {len(feasible)} of {total} settings that {where}"
+        f"among the {len(feasible)} of {total} cells that {where}"
     )
     for lim in limits:
         values = per_seed(best, lim.metric).to_numpy(dtype=float)
@@ -211,11 +214,11 @@ def recommend(
         rec.reasons.append(f"{lim}: mean {_fmt(spread.mean)} holds {note}")
     for text, count in failures.items():
         if count:
-            rec.reasons.append(f"{count} of {total} settings were ruled out by {text}")
+            rec.reasons.append(f"{count} of {total} cells were ruled out by {text}")
     if front is not None:
         rec.reasons.append(
             "it is on the Pareto front" if rec.on_front
-            else "it is not on the Pareto front: another setting is at least as good on all three "
+            else "it is not on the Pareto front: another cell is at least as good on all three "
                  "front objectives, but misses a limit or the objective"
         )
     if len(ranked) > 1:
@@ -245,7 +248,7 @@ def recommend(
             + f", paired interval {_fmt(lo)} to {_fmt(hi)}; {told}"
         )
     else:
-        rec.reasons.append("no other setting meets every limit, so there is no runner-up")
+        rec.reasons.append("no other cell meets every limit, so there is no runner-up")
     return rec
 
 

@@ -118,7 +118,7 @@ class Axis:
 
 @dataclass(frozen=True)
 class Cell:
-    """One setting of a sweep's grid: its index, the value of each axis, and a label of
+    """One cell of a sweep's grid: its index, the value of each axis, and a label of
     ``key=value`` pairs (each key shortened to its last part unless that is ambiguous)."""
 
     index: int

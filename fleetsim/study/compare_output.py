@@ -1,0 +1,176 @@
+"""What a comparison prints and the files it writes, each atomically by :func:`write_compare`.
+
+In the folder: ``cells/`` (resume), ``runs.parquet/.csv`` (every metric per condition, arm
+and seed, with ``condition``, ``stress_file``, ``arm`` and ``arm_settings``),
+``differences.parquet/.csv`` (one row per condition and metric, with the verdict code,
+``seeds`` and ``alpha``), ``comparison.json`` (the design, the code tables, the verdicts)
+and ``comparison.md`` (the text, every metric).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+
+from .. import __version__
+from .compare import ComparisonResult
+from .stats import LEVEL
+from .store import atomic_text, save_frame
+from .table import WORST_REPRESENTATION, column_name, direction_of
+from .verdicts import ALPHA, CONDITIONS, VERDICTS, Condition, verdict_text
+
+__all__ = ["render_compare", "comparison_record", "write_compare", "HEADLINE"]
+
+HEADLINE = (
+    "rounds_committed_per_hour",
+    "waste_compute_fraction",
+    "waste_energy_fraction",
+    "bias_coverage",
+    WORST_REPRESENTATION,
+    "bias_gini",
+    "rounds_duration_s_p50",
+)
+"""Metrics the command prints first (every metric is in differences.csv)."""
+
+_TYPE_SHARES = ("eligible_share", "accepted_share", "report_share", "weight_share", "representation_ratio")
+
+def _num(x: Any) -> str:
+    if x is None or x is pd.NA or (isinstance(x, float) and not math.isfinite(x)):
+        return "n/a"
+    return f"{x:.4g}"
+
+
+def _signed(x: float) -> str:
+    return "n/a" if not math.isfinite(x) else f"{x:+.4g}"
+
+
+def _row_text(row: pd.Series, name: str, width: int) -> str:
+    interval = "" if not math.isfinite(row["low"]) else f" [{_signed(row['low'])}, {_signed(row['high'])}]"
+    return (f"  {name:<{width}} {_num(row['baseline_mean']):>10} {_num(row['candidate_mean']):>10}  "
+            f"{(_signed(row['difference']) + interval):<34} {verdict_text(row['verdict'], row['seeds'])}")
+
+
+def _shown(part: pd.DataFrame, type_names: list[str], every_metric: bool) -> tuple[list[tuple[str, str]], int]:
+    """(metric, name printed) of the rows to print, and how many of them are headline metrics."""
+    if every_metric:
+        return [(m, m) for m in part.index], len(part.index)
+    shown = [(m, m) for m in HEADLINE if m in part.index]
+    headline = len(shown)
+    for name in type_names:
+        for share in _TYPE_SHARES:
+            metric = column_name(("bias", "by_device_type", name, share))
+            if metric in part.index:
+                shown.append((metric, f"{name}: {share}"))
+    return shown, headline
+
+
+def _condition_lines(result: ComparisonResult, condition: Condition, every_metric: bool) -> list[str]:
+    d = result.differences
+    part = d[d["condition"] == condition.code].set_index("metric", drop=False)
+    shown, headline = _shown(part, result.type_names, every_metric)
+    width = max([len(n) for _, n in shown] + [20])
+    lines = ["", f"{condition.text}:",
+             f"  {'metric':<{width}} {'baseline':>10} {'candidate':>10}  {'difference [95% interval]':<34} verdict"]
+    for i, (metric, name) in enumerate(shown):
+        if i == headline and not every_metric:
+            lines.append("  by device type (bias_by_device_type_<type>_<figure>):")
+        lines.append(_row_text(part.loc[metric], name, width))
+    counts = part["verdict"].value_counts()
+    lines.append("  all metrics: " + ", ".join(f"{v} {k}" for k, v in counts.items())
+                 + " (every metric in differences.csv, or rerun with --all)")
+    return lines
+
+
+def _detection_lines(result: ComparisonResult) -> list[str]:
+    texts = {c.code: c.text for c in result.conditions}
+    lines = ["", f"seeds needed (paired t test, two-sided {100 * ALPHA:g}% level, power {result.power:g}; "
+                 "noncentral t, Cohen 1988):"]
+    for row in result.detections.itertuples():
+        needed = "more than a million" if row.seeds_needed is pd.NA else f"{row.seeds_needed}"
+        if not math.isfinite(row.sd_of_differences):
+            needed = "unknown (needs at least 2 seeds to estimate the spread)"
+        lines.append(f"  {row.metric} by {_num(row.change)} ({texts[row.condition]}): {needed} "
+                     f"(sd of paired differences {_num(row.sd_of_differences)})")
+    return lines
+
+
+def render_compare(result: ComparisonResult, every_metric: bool = False) -> str:
+    """The plain-text account of a comparison that ``fleetsim compare`` prints (verdicts worded
+    from their codes by :func:`fleetsim.study.verdicts.verdict_text`)."""
+    seeds = result.seeds
+    pairing = ("the same seed for both arms (common random numbers)" if result.candidate_seed_offset == 0
+               else f"candidate seeds offset by {result.candidate_seed_offset} (unpaired randomness)")
+    runs = len({(r.condition, r.arm, r.run_seed) for r in result.runs.itertuples()})
+    lines = [
+        f"compare on {result.base.source}: {len(seeds)} seeds ({seeds[0]}..{seeds[-1]}), {pairing}",
+        f"  baseline:  {result.baseline.label}",
+        f"  candidate: {result.candidate.label}",
+        f"  {runs} runs on {result.executor}; {result.reused} reused; {result.wall_s:.1f} s",
+        "  differences are candidate - baseline, mean over seeds with 95% paired t intervals",
+    ]
+    for condition in result.conditions:
+        lines += _condition_lines(result, condition, every_metric)
+    d = result.differences
+    if len(result.conditions) > 1:
+        lines += ["", "does the candidate still win under stress?"]
+        for metric in HEADLINE:
+            verdicts = [f"{verdict_text(row.verdict, row.seeds)} {condition.text}"
+                        for condition in result.conditions
+                        for row in d[(d["condition"] == condition.code) & (d["metric"] == metric)].itertuples()]
+            if verdicts and direction_of(metric):
+                lines.append(f"  {metric}: " + "; ".join(verdicts))
+    if not result.detections.empty:
+        lines += _detection_lines(result)
+    lines += ["", f"caution: {result.caution}"]
+    return "\n".join(lines)
+
+
+def comparison_record(result: ComparisonResult) -> dict[str, Any]:
+    """The JSON-ready description of a comparison written to ``comparison.json``."""
+    def verdicts(condition: str) -> dict[str, str]:
+        part = result.differences[result.differences["condition"] == condition]
+        return dict(zip(part["metric"], part["verdict"], strict=True))
+
+    return {
+        "kind": "compare",
+        "fleetsim": __version__,
+        "fleet_file": result.base.source,
+        "overrides": list(result.base.overrides),
+        "arms": [{"arm": arm.name, "settings": list(arm.overrides)} for arm in (result.baseline, result.candidate)],
+        "seeds": result.seeds,
+        "candidate_seed_offset": result.candidate_seed_offset,
+        "conditions": [{"condition": c.code, "stress_file": c.stress_file, "meaning": CONDITIONS[c.code]}
+                       for c in result.conditions],
+        "interval": f"{int(LEVEL * 100)}% paired Student t across seeds",
+        "alpha": ALPHA,
+        "power": result.power,
+        "verdict_codes": VERDICTS,
+        "verdicts": {c.code: verdicts(c.code) for c in result.conditions},
+        "detections": json.loads(result.detections.to_json(orient="records")),
+        "executor": result.executor,
+        "runs_reused": result.reused,
+        "wall_s": result.wall_s,
+        "caution": result.caution,
+    }
+
+
+def write_compare(result: ComparisonResult, folder: str | Path) -> list[Path]:
+    """Write runs, differences, comparison.json and comparison.md into ``folder``, each atomically.
+
+    Raises FleetsimError when ``folder`` is not empty and not a fleetsim comparison folder (see
+    :func:`fleetsim.output.claim_study`) or a file cannot be written.
+    """
+    from ..output import claim_study
+
+    folder = Path(folder)
+    claim_study(folder, "compare")
+    written = []
+    for frame, stem in ((result.runs, "runs"), (result.differences, "differences")):
+        written += save_frame(frame, folder / stem)
+    atomic_text(folder / "comparison.json", json.dumps(comparison_record(result), indent=2, default=str) + "\n")
+    atomic_text(folder / "comparison.md", render_compare(result, every_metric=True) + "\n")
+    return written + [folder / "comparison.json", folder / "comparison.md"]

@@ -1,0 +1,230 @@
+"""What a sweep prints (:func:`render_sweep`) and the files of its study folder, each written
+atomically by :func:`write_sweep`::
+
+    cells/                one record per finished cell x seed (resume; see store.py)
+    runs.parquet, .csv    every summary metric per cell and seed (study columns)
+    cell_means.parquet,   per cell and metric: seeds, mean, sd and 95% t interval
+      .csv
+    front.csv             per cell: the front's objectives, the objective and limited
+                          metrics (<metric>_mean, _low, _high), on_front, meets_limits
+    study.json            the design, the cells, the front, the recommendation and the caution
+    study.md              the text the command prints
+    frontier.png          throughput against waste, coloured by worst representation
+    heatmaps/*.png        each chosen metric over the two first varied keys (file names are
+                          safe slugs of the metric names, see fleetsim.output.safe_name)
+    .fleetsim-output      the marker of a fleetsim study folder (kind sweep)
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from collections.abc import Sequence
+from functools import partial
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .. import __version__
+from ..config import config_hash
+from ..errors import ConfigError
+from ..output import claim_study, inside, safe_name, write_csv
+from .names import resolve_metric
+from .stats import LEVEL
+from .store import atomic_save, atomic_text, run_key, save_frame
+from .sweep import SweepResult
+from .table import PARETO_OBJECTIVES, WORST_REPRESENTATION, metric_columns
+
+__all__ = ["render_sweep", "write_sweep", "study_record", "front_table", "default_heatmaps", "PLOT_FORMATS"]
+
+PLOT_FORMATS = {"png": ["png"], "svg": ["svg"], "both": ["png", "svg"]}
+"""``--plot-format`` values and the file formats each writes."""
+
+
+def _interval_text(result: SweepResult, cell: int, metric: str) -> str:
+    row = result.cell_means[(result.cell_means["cell"] == cell) & (result.cell_means["metric"] == metric)]
+    if row.empty:
+        return "n/a"
+    r = row.iloc[0]
+    if not math.isfinite(r["mean"]):
+        return "n/a"
+    if not math.isfinite(r["low"]):
+        return f"{r['mean']:.4g}"
+    return f"{r['mean']:.4g} [{r['low']:.4g}, {r['high']:.4g}]"
+
+
+def render_sweep(result: SweepResult) -> str:
+    """The plain-text account of a sweep that ``fleetsim sweep`` prints."""
+    n_cells, n_seeds = len(result.grid), len(result.seeds)
+    total = len({run_key(c, s) for c in result.configs for s in result.seeds})  # distinct runs
+    objectives = ", ".join(f"{name} ({'higher' if up else 'lower'})" for name, up in PARETO_OBJECTIVES)
+    lines = [
+        f"sweep of {result.base.source}"
+        + (f" under the stress file {result.base.stress_source}" if result.base.stress_source else ""),
+        f"  {n_cells} cells x {n_seeds} seeds ({result.seeds[0]}..{result.seeds[-1]}) = {total} runs on "
+        f"{result.executor}; {total - result.reused} run now, {result.reused} reused; {result.wall_s:.1f} s",
+        "  same seed, same fleet in every cell (common random numbers; see docs/studies.md)",
+        "",
+        f"Pareto front: {len(result.front)} of {n_cells} cells, those no other cell beats on all of {objectives}:",
+    ]
+    width = max([len(c.label) for c in result.grid] + [8])
+    lines.append(f"  {'cell':<{width}}  {'committed per hour':<26}  {'compute waste fraction':<26}  "
+                 "worst representation")
+    for cell in result.grid:
+        if cell.index not in result.front:
+            continue
+        parts = [_interval_text(result, cell.index, name) for name, _ in PARETO_OBJECTIVES]
+        lines.append(f"  {cell.label:<{width}}  {parts[0]:<26}  {parts[1]:<26}  {parts[2]}")
+    lines.append("  (means over seeds, 95% t intervals in brackets)")
+    rec = result.recommendation
+    lines.append("")
+    goal = f"{'maximise' if rec.objective.maximise else 'minimise'} {rec.objective.metric}"
+    if rec.limits:
+        goal += " subject to " + " and ".join(str(lim) for lim in rec.limits)
+    lines.append(f"recommendation ({goal}):")
+    lines.append(f"  {rec.label}" if rec.cell is not None else "  none")
+    lines.extend(f"  - {reason}" for reason in rec.reasons)
+    lines.append("")
+    lines.append(f"caution: {result.caution}")
+    return "\n".join(lines)
+
+
+def _json_value(value: Any) -> Any:
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, (np.integer,)):
+        return int(value)
+    if isinstance(value, (np.floating,)):
+        return _json_value(float(value))
+    if isinstance(value, (np.bool_,)):
+        return bool(value)
+    return value
+
+
+def study_record(result: SweepResult) -> dict[str, Any]:
+    """The JSON-ready description of a sweep written to ``study.json``."""
+    objectives = [{"metric": name, "maximise": up} for name, up in PARETO_OBJECTIVES]
+    return {
+        "kind": "sweep",
+        "fleetsim": __version__,
+        "fleet_file": result.base.source,
+        "stress_file": result.base.stress_source,
+        "overrides": list(result.base.overrides),
+        "axes": [{"key": a.key, "column": column, "values": [_json_value(v) for v in a.values]}
+                 for a, column in zip(result.axes, result.settings_columns(), strict=True)],
+        "seeds": result.seeds,
+        "interval": f"{int(LEVEL * 100)}% Student t across seeds",
+        "cells": [
+            {
+                "cell": cell.index,
+                "label": cell.label,
+                "settings": {k: _json_value(v) for k, v in cell.settings},
+                "config_hash": config_hash(config),
+                "on_front": cell.index in result.front,
+                "meets_limits": cell.index in result.recommendation.feasible,
+            }
+            for cell, config in zip(result.grid, result.configs, strict=True)
+        ],
+        "pareto_objectives": objectives,
+        WORST_REPRESENTATION: (
+            "min over device types of min(r, 1/r), r = report share / fleet share (1 is proportional)"
+        ),
+        "front": result.front,
+        "recommendation": result.recommendation.as_dict(),
+        "executor": result.executor,
+        "runs_reused": result.reused,
+        "wall_s": result.wall_s,
+        "caution": result.caution,
+    }
+
+
+def default_heatmaps(result: SweepResult) -> list[str]:
+    """The metrics drawn by default: the front's objectives, the objective and limits, and a
+    few headline figures."""
+    names = [name for name, _ in PARETO_OBJECTIVES]
+    names.append(result.recommendation.objective.metric)
+    names.extend(lim.metric for lim in result.recommendation.limits)
+    names.extend(["bias_coverage", "waste_energy_fraction", "rounds_duration_s_p90"])
+    out: list[str] = []
+    for name in names:
+        if name in result.runs.columns and name not in out:
+            out.append(name)
+    return out
+
+
+def front_table(result: SweepResult) -> pd.DataFrame:
+    """``front.csv``: per cell its settings, ``<metric>_mean``, ``_low`` and ``_high`` of the
+    front's objectives, the objective and the limited metrics, ``on_front`` and ``meets_limits``."""
+    rec = result.recommendation
+    wanted = [name for name, _ in PARETO_OBJECTIVES]
+    for name in [rec.objective.metric, *(lim.metric for lim in rec.limits)]:
+        if name not in wanted:
+            wanted.append(name)
+    table = result.cells[["cell", "label", *result.settings_columns()]].copy()
+    for name in wanted:
+        rows = result.cell_means[result.cell_means["metric"] == name].set_index("cell")
+        for figure in ("mean", "low", "high"):
+            table[f"{name}_{figure}"] = table["cell"].map(rows[figure])
+    table["on_front"] = result.cells["on_front"].to_numpy()
+    table["meets_limits"] = result.cells["meets_limits"].to_numpy()
+    return table
+
+
+def _chosen(result: SweepResult, heatmaps: Sequence[str] | None) -> list[str]:
+    metrics = metric_columns(result.runs)
+    if heatmaps is None:
+        return default_heatmaps(result)
+    if list(heatmaps) == ["all"]:
+        return metrics
+    chosen: list[str] = []
+    for name in heatmaps:
+        metric = resolve_metric(name, metrics, "--heatmap")
+        if metric not in chosen:
+            chosen.append(metric)
+    return chosen
+
+
+def write_sweep(
+    result: SweepResult,
+    folder: str | Path,
+    heatmaps: Sequence[str] | None = None,
+    plot_format: str = "png",
+) -> list[Path]:
+    """Write the tables, study.json, study.md and plots into ``folder`` (each file atomically).
+
+    ``heatmaps``: metric names to draw (short names allowed; ``["all"]`` draws every metric);
+    None draws :func:`default_heatmaps`. ``plot_format``: ``png``, ``svg`` or ``both``.
+    Returns the paths written. Raises ConfigError for an unknown heat-map metric or format,
+    FleetsimError when ``folder`` is not empty and not a fleetsim sweep folder (see
+    :func:`fleetsim.output.claim_study`) or a file cannot be written.
+    """
+    from .plots import frontier_plot, heat_map
+
+    folder = Path(folder)
+    formats = PLOT_FORMATS.get(plot_format)
+    if formats is None:
+        raise ConfigError([f"--plot-format {plot_format}: expected png, svg or both"])
+    chosen = _chosen(result, heatmaps)
+    result.heatmap_metrics = chosen
+    claim_study(folder, "sweep")
+    written: list[Path] = []
+    for frame, stem in ((result.runs, "runs"), (result.cell_means, "cell_means")):
+        written.extend(save_frame(frame, inside(folder, folder / stem)))
+    atomic_save(folder / "front.csv", partial(write_csv, front_table(result)))
+    atomic_text(folder / "study.json", json.dumps(study_record(result), indent=2, default=str) + "\n")
+    atomic_text(folder / "study.md", render_sweep(result) + "\n")
+    written.extend([folder / "front.csv", folder / "study.json", folder / "study.md"])
+
+    taken: set[str] = set()
+    stems = {metric: safe_name(metric, taken) for metric in chosen}  # metric names hold device type names
+    for extension in formats:
+        path = folder / f"frontier.{extension}"
+        atomic_save(path, partial(frontier_plot, result, fmt=extension))
+        written.append(path)
+        for metric in chosen:
+            path = inside(folder, folder / "heatmaps" / f"{stems[metric]}.{extension}")
+            atomic_save(path, partial(heat_map, result, metric, fmt=extension))
+            written.append(path)
+    return written
