@@ -229,6 +229,12 @@ class RoundServer:
             live, battery, charging = runtime.eligible(devices, times)
             return devices[live], times[live], battery, charging
         key = np.asarray(key, dtype=float)
+        if key.shape != (first.size,) or np.isnan(key).any():
+            raise FleetsimError(
+                f"selection policy {type(self.policy).__name__}.rank returned keys of shape {key.shape}"
+                f"{' with NaN' if key.shape == (first.size,) else ''} in round {view.round_index} at t={start:.3f} s "
+                f"(need one number per candidate, {first.size}; +inf: never chosen)"
+            )
         remaining = np.flatnonzero(key < np.inf)  # +inf: never chosen (-inf ranks first)
         found: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
         count = 0

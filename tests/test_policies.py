@@ -112,6 +112,21 @@ def test_a_policy_returning_bad_positions_is_named():
         engine.make_policy = original
 
 
+@pytest.mark.parametrize(("keys", "said"), [(lambda n: np.zeros(n + 1), r"shape \(\d+,\)"),
+                                           (lambda n: np.full(n, np.nan), "with NaN")])
+def test_a_rank_of_the_wrong_length_or_with_nan_is_named(monkeypatch, keys, said):
+    # rank must give one number per candidate; anything else is refused, naming the policy.
+    class BadRank(BUILTIN_POLICIES["quick-finish"]):
+        def rank(self, candidates, round, rng):
+            return keys(candidates.device.size)
+
+    from fleetsim import engine
+
+    monkeypatch.setattr(engine, "make_policy", lambda *a, **k: BadRank())
+    with pytest.raises(fleetsim.FleetsimError, match=f"BadRank.rank returned keys of .*{said}"):
+        fleetsim.simulate(load_config(example_path(), SMALL), seed=0)
+
+
 class QuickFinishUnranked(BUILTIN_POLICIES["quick-finish"]):
     """quick-finish without its rank: the engine shows it every eligible check-in."""
 
