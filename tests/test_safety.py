@@ -309,7 +309,8 @@ def test_hostile_names_make_safe_heat_map_files_inside_out(tmp_path):
                                   "rounds.min_reports=15"])
     folder = tmp_path / "deep" / "study"
     result = run_sweep(base, [parse_axis("rounds.rest=1h")], [0], executor=InProcess(), folder=folder)
-    metrics = [f"bias.by_device_type.{name}.report_share" for name in HOSTILE_TYPES.values()]
+    # Study columns: the summary path joined with '_' ('-' written '_'; docs/studies.md).
+    metrics = [f"bias_by_device_type_{name.replace('-', '_')}_report_share" for name in HOSTILE_TYPES.values()]
     before = set(_tree(tmp_path))
     written = write_sweep(result, folder, heatmaps=metrics)
     new = set(_tree(tmp_path)) - before
@@ -318,7 +319,7 @@ def test_hostile_names_make_safe_heat_map_files_inside_out(tmp_path):
     assert len(maps) == 3 and all(not m.startswith(".") and "/" not in m and m.endswith(".png") for m in maps)
     assert all(p.resolve().is_relative_to(folder.resolve()) for p in written)
     header = (folder / "runs.csv").read_text(encoding="utf-8").split("\n")[0]
-    assert "bias.by_device_type.=1+1.report_share" in header  # inside a name, '=' starts no formula
+    assert "bias_by_device_type_=1+1_report_share" in header  # inside a name, '=' starts no formula
 
 
 # ------------------------------------------------------------------------------ faults
