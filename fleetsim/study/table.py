@@ -97,7 +97,7 @@ _DIRECTIONS: tuple[tuple[str, Direction], ...] = (
 
 def column_name(path: Sequence[str]) -> str:
     """The study column of a summary key path: segments joined with ``_``, each ``-`` written ``_``."""
-    return "_".join(str(segment).replace("-", "_") for segment in path)
+    return "_".join(json_key(str(segment)) for segment in path)
 
 
 def _walk(path: tuple[str, ...], value: Any, out: dict[str, tuple[tuple[str, ...], Any]]) -> None:
