@@ -5,8 +5,8 @@ The engine builds the run's :class:`fleetsim.record.RunRecord` and hands it to a
 
 Random streams (each a ``numpy.random.Generator`` derived from the seed and its name, see
 :func:`fleetsim.fleet.stream`): ``fleet`` (device traits and check-in phases), ``checkin``
-(signal states seen at check-ins), ``battery`` (battery levels at check-in), ``task``
-(signal losses and crashes during tasks), ``policy`` (a policy's own draws) and ``census``
+(chain states seen at check-ins), ``battery`` (battery scores at check-in), ``task``
+(chain paths and crashes during tasks), ``policy`` (a policy's own draws) and ``census``
 (the measurement of eligible devices; it never changes the run).
 """
 

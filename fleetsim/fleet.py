@@ -90,39 +90,43 @@ def _draw(rng: np.random.Generator, trait: Trait, size: int, per_unit: float = 1
 
 
 def sample_fleet(config: Config, seed: int) -> Fleet:
-    """Draw ``config.fleet.devices`` devices: type and region by share, traits lognormal."""
+    """Draw ``config.fleet.devices`` devices: each its (type, region) pair from the fleet's joint
+    mix (:meth:`fleetsim.config.FleetSpec.joint_mix`), its traits lognormal from the pair's
+    spec (:meth:`fleetsim.config.FleetSpec.group_spec`)."""
     spec = config.fleet
     n = spec.devices
     rng = stream(seed, "fleet")
     type_names = tuple(spec.device_types)
     region_names = tuple(spec.regions)
-    type_share = np.array([t.share for t in spec.device_types.values()])
-    region_share = np.array([r.share for r in spec.regions.values()])
-    device_type = rng.choice(len(type_names), size=n, p=type_share / type_share.sum()).astype(np.int16)
-    region = rng.choice(len(region_names), size=n, p=region_share / region_share.sum()).astype(np.int16)
+    joint = np.array(spec.joint_mix()).reshape(-1)  # [type * regions + region]
+    pair = rng.choice(joint.size, size=n, p=joint / joint.sum())
+    device_type = (pair // len(region_names)).astype(np.int16)
+    region = (pair % len(region_names)).astype(np.int16)
 
     columns: dict[str, np.ndarray] = {
         key: np.empty(n)
         for key in ("sample_cost_s", "memory_bytes", "battery_wh", "train_power_w", "radio_power_w",
                     "charge_power_w", "down_mbps", "up_mbps", "samples")
     }
-    for index, kind in enumerate(spec.device_types.values()):
-        members = np.flatnonzero(device_type == index)
-        count = members.size
-        traits = {  # array -> (trait, its unit per array unit)
-            "sample_cost_s": (kind.sample_cost, 1.0),
-            "memory_bytes": (kind.memory, 1.0),
-            "battery_wh": (kind.battery_capacity, 1.0),
-            "train_power_w": (kind.train_power, 1.0),
-            "down_mbps": (kind.download_rate, _BIT_PER_S_PER_MBPS),
-            "up_mbps": (kind.upload_rate, _BIT_PER_S_PER_MBPS),
-            "samples": (kind.samples, 1.0),
-        }
-        # Draw in a fixed order so each trait's stream position depends only on the fleet spec.
-        for key, (trait, per_unit) in traits.items():
-            columns[key][members] = _draw(rng, trait, count, per_unit)
-        columns["radio_power_w"][members] = kind.radio_power
-        columns["charge_power_w"][members] = kind.charge_power
+    for index, tname in enumerate(type_names):
+        for r, rname in enumerate(region_names):
+            kind = spec.group_spec(tname, rname)
+            members = np.flatnonzero((device_type == index) & (region == r))
+            count = members.size
+            traits = {  # array -> (trait, its unit per array unit)
+                "sample_cost_s": (kind.sample_cost, 1.0),
+                "memory_bytes": (kind.memory, 1.0),
+                "battery_wh": (kind.battery_capacity, 1.0),
+                "train_power_w": (kind.train_power, 1.0),
+                "down_mbps": (kind.download_rate, _BIT_PER_S_PER_MBPS),
+                "up_mbps": (kind.upload_rate, _BIT_PER_S_PER_MBPS),
+                "samples": (kind.samples, 1.0),
+            }
+            # Draw in a fixed order so each trait's stream position depends only on the fleet spec.
+            for key, (trait, per_unit) in traits.items():
+                columns[key][members] = _draw(rng, trait, count, per_unit)
+            columns["radio_power_w"][members] = kind.radio_power
+            columns["charge_power_w"][members] = kind.charge_power
     phase = rng.uniform(0.0, config.rounds.checkin_every, size=n)
     return Fleet(
         type_names=type_names,

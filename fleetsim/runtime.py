@@ -8,31 +8,26 @@ first tick in the window at which it is eligible (a device that checked in waits
 server's answer), so it is one candidate per window.
 
 Eligibility at a tick: the device's memory fits the model, it is neither working nor
-resting, every required signal is on (sampled lazily, see :mod:`fleetsim.signals`), and its
-battery level, drawn at check-in from its type's level distribution for its charging state,
-is at or above the workload's minimum.
+resting, every required signal is on (its chains sampled lazily, see :mod:`fleetsim.signals`:
+the settled chain first, then the own chain of each required signal the settled state does
+not hold on), and its battery level seen at check-in (:mod:`fleetsim.battery`: its law for
+the charging state, with memory of the last look) is at or above the workload's minimum.
 """
 
 from __future__ import annotations
 
 import numpy as np
-from scipy import stats
 
-from .client import task_times
+from .battery import BatteryState
+from .chains import SignalState
+from .client import Cohort, task_times
 from .config import SIGNALS, Config
 from .fleet import Fleet
-from .signals import SignalState, SignalTables
+from .signals import SETTLED, SignalTables
 
 __all__ = ["FleetRuntime"]
 
 _CHARGING = SIGNALS.index("charging")
-
-
-def _beta_params(mean_pct: float, sd_pct: float) -> tuple[float, float]:
-    """Beta(a, b) on [0, 1] with the given mean and sd (method of moments)."""
-    m, s = mean_pct / 100.0, sd_pct / 100.0
-    k = m * (1.0 - m) / (s * s) - 1.0
-    return m * k, (1.0 - m) * k
 
 
 class FleetRuntime:
@@ -60,12 +55,7 @@ class FleetRuntime:
         self.signals = SignalState(tables, self.group)
         self.required = [SIGNALS.index(s) for s in config.workload.requires]
         self.min_battery = config.workload.min_battery
-        levels = [config.fleet.device_types[name].battery_level for name in fleet.type_names]
-        self.beta_charging = np.array([_beta_params(lv.charging.mean, lv.charging.sd) for lv in levels])
-        self.beta_unplugged = np.array([_beta_params(lv.unplugged.mean, lv.unplugged.sd) for lv in levels])
-        floor = self.min_battery / 100.0
-        self.battery_ok_charging = stats.beta.sf(floor, *self.beta_charging.T)
-        self.battery_ok_unplugged = stats.beta.sf(floor, *self.beta_unplugged.T)
+        self.battery = BatteryState(config, fleet.type_names, fleet.region_names, self.group)
         # Each device's task time without disruptions (what a policy may rank by), s.
         download_s, train_s, upload_s = task_times(
             config.workload, fleet.down_mbps, fleet.up_mbps, fleet.samples, fleet.sample_cost_s
@@ -101,11 +91,6 @@ class FleetRuntime:
         if len(devices) == 1:
             return devices[0], times[0]
         return np.concatenate(devices), np.concatenate(times)
-
-    def _battery(self, devices: np.ndarray, charging: np.ndarray, rng: np.random.Generator) -> np.ndarray:
-        types = self.fleet.device_type[devices]
-        params = np.where(charging[:, None], self.beta_charging[types], self.beta_unplugged[types])
-        return 100.0 * rng.beta(params[:, 0], params[:, 1])
 
     def free_ticks(self, start: float, end: float) -> tuple[np.ndarray, np.ndarray]:
         """Ticks in [start, end) of devices that could check in (memory fits, not busy or
@@ -152,15 +137,24 @@ class FleetRuntime:
     def _eligible_once(self, devices: np.ndarray, times: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """:meth:`eligible` for ticks of distinct devices."""
         rng = self.rngs["checkin"]
+        signals = self.signals
         live = np.arange(devices.size)
+        covers = self.tables.covers[self.group[devices]]  # [n, S]
+        settled = np.zeros(devices.size, dtype=bool)
+        if self.tables.has_settled:
+            settled = signals.observe(devices, SETTLED, times, rng)
         for s in self.required:
-            on = self.signals.observe(devices[live], s, times[live], rng)
+            held = settled[live] & covers[live, s]  # the settled state holds the signal on
+            look = live[~held]
+            on = np.ones(live.size, dtype=bool)
+            on[~held] = signals.observe(devices[look], 1 + s, times[look], rng)
             live = live[on]
-        if _CHARGING in self.required:
-            charging = np.ones(live.size, dtype=bool)
-        else:
-            charging = self.signals.observe(devices[live], _CHARGING, times[live], rng)
-        battery = self._battery(devices[live], charging, self.rngs["battery"])
+        charging = np.ones(live.size, dtype=bool)
+        if _CHARGING not in self.required:
+            held = settled[live] & covers[live, _CHARGING]
+            look = live[~held]
+            charging[~held] = signals.observe(devices[look], 1 + _CHARGING, times[look], rng)
+        battery = self.battery.look(devices[live], times[live], charging, self.rngs["battery"])
         ok = battery >= self.min_battery
         return live[ok], battery[ok], charging[ok]
 
@@ -182,29 +176,20 @@ class FleetRuntime:
         """A round accepted ``devices``: busy until released (no more check-ins)."""
         self.free_at[devices] = np.inf
 
-    def release(
-        self, devices: np.ndarray, accept_s: np.ndarray, end_rel: np.ndarray, signal_off_at: np.ndarray
-    ) -> None:
-        """``devices`` ended their participation at ``accept_s + end_rel`` (s): they rest for
-        the rounds' ``rest``, their participation count and time move on, and what their tasks
-        showed of the signals is recorded. ``signal_off_at`` is [S, n], the time after
-        acceptance each tracked signal turned off (inf: not tracked)."""
-        ended = accept_s + end_rel
+    def release(self, cohort: Cohort, end_rel: np.ndarray) -> None:
+        """The cohort's devices ended their participation at ``accept_s + end_rel`` (s): they
+        rest for the rounds' ``rest``, their participation count and time move on, and the
+        states their tasks left (every chain, the battery level) are recorded."""
+        devices = cohort.device
+        ended = cohort.accept_s + end_rel
         self.free_at[devices] = ended + self.config.rounds.rest
         self.last_participation[devices] = ended
         self.participations[devices] += 1
-        for s in range(len(SIGNALS)):
-            off_at = signal_off_at[s]
-            tracked = np.isfinite(off_at)
-            if not tracked.any():
-                continue
-            went_off = tracked & (off_at <= end_rel)
-            still_on = tracked & ~went_off
-            if still_on.any():
-                self.signals.record(devices[still_on], s, ended[still_on], np.ones(int(still_on.sum())))
-            if went_off.any():
-                when = accept_s[went_off] + off_at[went_off]
-                self.signals.record(devices[went_off], s, when, np.zeros(int(went_off.sum())))
+        chains = cohort.paths.state_at(np.minimum(ended, cohort.paths.t_stop))
+        for c in np.flatnonzero(cohort.paths.followed):
+            self.signals.record(devices, int(c), ended, chains[c].astype(float))
+        charging = self.signals.signals_on(devices, chains)[_CHARGING]
+        self.battery.record(devices, ended, charging, cohort.battery_at(end_rel))
 
     # ------------------------------------------------------------------ measurement
 
@@ -266,18 +251,29 @@ class FleetRuntime:
         return np.concatenate(parts)
 
     def _eligible_probability(self, devices: np.ndarray, t: float) -> np.ndarray:
-        """Probability that each (free, capable) device would be eligible at ``t``."""
+        """Probability that each (free, capable) device would be eligible at ``t``: over the
+        settled chain's two states, the product of the required signals' on-probabilities
+        (1 for a signal the settled state holds on, else its own chain's), times the chance
+        the battery clears the minimum for each charging state."""
         times = np.full(devices.size, t)
-        prob = np.ones(devices.size)
-        for s in self.required:
-            prob *= self.signals.probability(devices, s, times)
-        types = self.fleet.device_type[devices]
-        if _CHARGING in self.required:
-            prob *= self.battery_ok_charging[types]
-        else:
-            q = self.signals.probability(devices, _CHARGING, times)
-            prob *= q * self.battery_ok_charging[types] + (1 - q) * self.battery_ok_unplugged[types]
-        return prob
+        signals, battery = self.signals, self.battery
+        covers = self.tables.covers[self.group[devices]]  # [n, S]
+        own = {s: signals.probability(devices, 1 + s, times) for s in set(self.required) | {_CHARGING}}
+        q_settled = signals.probability(devices, SETTLED, times) if self.tables.has_settled else np.zeros(devices.size)
+        ok_on = battery.ok_probability(devices, times, True)
+        ok_off = battery.ok_probability(devices, times, False)
+        total = np.zeros(devices.size)
+        for settled, weight in ((False, 1.0 - q_settled), (True, q_settled)):
+            prob = weight.copy()
+            for s in self.required:
+                prob *= np.where(settled & covers[:, s], 1.0, own[s])
+            if _CHARGING in self.required:
+                prob *= ok_on
+            else:
+                q = np.where(settled & covers[:, _CHARGING], 1.0, own[_CHARGING])
+                prob *= q * ok_on + (1 - q) * ok_off
+            total += prob
+        return total
 
 
 def _occurrence(devices: np.ndarray) -> np.ndarray:

@@ -27,7 +27,7 @@ import numpy as np
 import simpy
 
 from .client import Cohort, resolve_cohort
-from .config import SIGNALS, Config
+from .config import Config
 from .errors import FleetsimError
 from .events import ROUND_STATUS, EventLog, outcome_codes, round_status, waste_codes
 from .policies import Candidates, RoundView, SelectionPolicy
@@ -61,8 +61,7 @@ class RoundServer:
         self.rngs = rngs
         self.horizon_s = horizon_s
         self.on_progress = on_progress
-        fleet = runtime.fleet
-        shares = np.array([config.fleet.device_types[t].share for t in fleet.type_names])
+        shares = np.array(config.fleet.joint_mix()).sum(axis=1)  # the fleet's type mix, every region's own
         self.type_shares = shares / shares.sum()
         self.outages = sorted(
             (d.start, d.start + d.duration) for d in config.disruptions if d.kind == "server-outage"
@@ -70,9 +69,6 @@ class RoundServer:
         self.round_index = 0
         self._rate: float | None = None  # eligible check-ins per second seen lately (sizes arrival windows)
         self._eligible_share = 0.1  # share of free ticks found eligible lately (sizes ranked batches)
-        self._mean_on = np.array(
-            [[config.fleet.device_types[t].signals[s].mean_on for t in fleet.type_names] for s in SIGNALS]
-        )  # [S, types]
 
     # -------------------------------------------------------------------------- helpers
 
@@ -313,7 +309,7 @@ class RoundServer:
             status=_STATUS[status],
             checkins=int(checkins),
         )
-        self.runtime.release(devices, accept_s, end_rel, cohort.signal_off_at)
+        self.runtime.release(cohort, end_rel)
         return float(closed)
 
     def _resolve(
@@ -334,9 +330,8 @@ class RoundServer:
             "charge_power_w": fleet.charge_power_w[devices],
             "battery_wh": fleet.battery_wh[devices],
         }
-        mean_on = self._mean_on[:, arrays["device_type"]]
         return resolve_cohort(
-            self.config, arrays, devices, accept_s, accept_s - checkin_s, charging, battery, mean_on,
+            self.config, arrays, devices, accept_s, checkin_s, charging, battery, self.runtime.signals,
             self.rngs["task"], fleet.type_names, fleet.region_names,
         )
 
@@ -377,7 +372,7 @@ class RoundServer:
             upload_bytes=upload_bytes,
             energy_wh=energy_wh,
             battery_start_pct=cohort.battery_start_pct,
-            battery_used_pct=100.0 * energy_wh / cohort.battery_wh,
+            battery_used_pct=100.0 * energy_wh / fleet.battery_wh[devices],
             samples=fleet.samples[devices],
             **columns,
         )

@@ -1,21 +1,32 @@
 """Diurnal on/off signals on local time, sampled exactly and lazily.
 
-Each device carries three two-state Markov chains (idle, charging, unmetered). In local hour
-h a chain with on-probability p and mean on-duration d leaves "on" at rate 1/d and leaves
-"off" at rate p / ((1 - p) d). Rates are piecewise constant on a 15-minute UTC grid (every
-IANA zone offset in use is a multiple of 15 minutes, so each grid step lies in one local
-hour, DST included).
+The form. Each device carries four independent two-state Markov chains (:data:`CHAINS`):
+``settled`` (the device put down for a spell: on its charger, on a home network, untouched)
+and one *own* chain per signal (idle, charging, unmetered). A signal is on when its own
+chain is on, or when the settled chain is on and the device type's ``settled.turns_on``
+lists the signal. A fleet file without ``settled`` gives a settled chain that is never on:
+the signals are then exactly three independent chains.
 
-The engine never walks a device's whole timeline. It keeps, per device and signal, the last
-time it looked and the probability the signal was on then (0 or 1 once observed, the
-chain's own law before). The on-probability at a later time follows in closed form:
-over a step with constant rates, q' = p + (q - p) exp(-lambda h), lambda = 1 / ((1 - p) d);
-composing steps is an affine map, so prefix tables make any gap O(1). Sampling the chain at
-the times the engine needs is exact in distribution (Markov property), and costs nothing for
-devices the server never hears from.
+Each chain has, in each local hour (weekday or weekend day of the device's region), an
+on-probability p and a mean on-duration d: it leaves "on" at rate 1/d and "off" at rate
+p / ((1 - p) d), so its stationary on-fraction is p. The own chain of a signal the settled
+state holds on gets p_own = 1 - (1 - p_signal) / (1 - p_settled), so that the signal is on
+with the file's probability p_signal (independent chains: the signal is off only when both
+are off). Rates are piecewise constant on a 15-minute UTC grid: every IANA zone offset in
+use is a multiple of 15 minutes, so each grid step lies in one local hour and one local day,
+DST included.
 
-Because the off-rate 1/d does not depend on the hour, the time a signal that is on stays on
-is exponential with mean d from any moment: a cohort's signal losses are drawn directly.
+Looks. The engine never walks a device's whole timeline. It keeps, per device and chain,
+the last time it looked and the probability the chain was on then (0 or 1 once observed,
+the chain's own law before). Over a step with constant rates the on-probability moves as
+q' = p + (q - p) exp(-lambda h), lambda = 1 / ((1 - p) d): an affine map, so prefix tables
+make any gap O(1). Sampling the chains at the times the engine needs is exact in
+distribution (Markov property) and costs nothing for devices the server never hears from.
+
+Paths. During a task the engine follows each chain's path exactly: a chain in state x at
+time t next flips at the first t' with integral_t^t' rate_x(u) du = E, E ~ Exp(1) (the
+piecewise-constant hazard, inverted on cumulative-hazard tables, :meth:`SignalTables.next_flip`).
+Each device's looks and paths are kept by :mod:`fleetsim.chains`.
 """
 
 from __future__ import annotations
@@ -28,41 +39,122 @@ import numpy as np
 
 from .config import SIGNALS, Config
 
-__all__ = ["STEP_S", "SignalTables", "build_signal_tables", "local_hours", "SignalState"]
+__all__ = [
+    "STEP_S", "CHAINS", "SETTLED", "SignalTables", "build_signal_tables", "local_hours", "local_calendar",
+    "chain_parameters",
+]
 
 STEP_S = 900.0
 """Grid step of the signal tables: 15 minutes."""
 
+CHAINS = ("settled",) + SIGNALS
+"""The chains of a device in table order: the settled state, then each signal's own chain."""
+
+SETTLED = 0
+"""Index of the settled chain; signal ``s`` (index into SIGNALS) has its own chain at ``1 + s``."""
+
 _P_MAX = 1.0 - 1e-6  # an on-probability of exactly 1 would make the off-rate infinite
+_NO_SETTLED_MEAN_ON_S = 3600.0  # any positive value: a chain with p = 0 never turns on
+
+
+def local_calendar(zone: str, start: datetime, steps: int, step_s: float = STEP_S) -> tuple[np.ndarray, np.ndarray]:
+    """Local hour (0-23) and ISO weekday (1 Monday ... 7 Sunday) in ``zone`` at the start of
+    each grid step from ``start`` (UTC)."""
+    tz = ZoneInfo(zone)
+    start = start.astimezone(timezone.utc)
+    hours = np.empty(steps, dtype=np.int8)
+    days = np.empty(steps, dtype=np.int8)
+    # Offsets change rarely: evaluate them once per step (cheap: a few thousand steps).
+    for k in range(steps):
+        moment = (start + timedelta(seconds=k * step_s)).astimezone(tz)
+        hours[k] = moment.hour
+        days[k] = moment.isoweekday()
+    return hours, days
 
 
 def local_hours(zone: str, start: datetime, steps: int, step_s: float = STEP_S) -> np.ndarray:
     """Local hour (0-23) in ``zone`` at the start of each grid step from ``start`` (UTC)."""
-    tz = ZoneInfo(zone)
-    start = start.astimezone(timezone.utc)
-    # Offsets change rarely: evaluate them once per step (cheap: a few thousand steps).
-    hours = np.empty(steps, dtype=np.int8)
-    for k in range(steps):
-        moment = (start + timedelta(seconds=k * step_s)).astimezone(tz)
-        hours[k] = moment.hour
-    return hours
+    return local_calendar(zone, start, steps, step_s)[0]
+
+
+def chain_parameters(
+    config: Config, type_name: str, region_name: str, hours: np.ndarray, weekend: np.ndarray,
+    step_times: np.ndarray | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """On-probability and mean on-duration (s) of each chain at each step, [CHAINS, steps].
+
+    ``hours`` and ``weekend`` give each step's local hour and whether its local day is a
+    weekend day of the region. The signals' own chains are derived from the file's signal
+    probabilities as the module says; behaviour-shift disruptions (``step_times``: each
+    step's start, s) change a signal's probability for their window before that.
+    """
+    spec = config.fleet.group_spec(type_name, region_name)
+    steps = hours.size
+    hours = hours.astype(np.int64)
+    p = np.zeros((len(CHAINS), steps))
+    d = np.full((len(CHAINS), steps), _NO_SETTLED_MEAN_ON_S)
+
+    def fill(pattern, row: int) -> np.ndarray:
+        """Fill ``row`` from a pattern's weekday/weekend tables; return its [2, 24] probabilities."""
+        tables = [pattern.profile(False), pattern.profile(True)]
+        prob = np.array([t[0] for t in tables])
+        mean = np.array([t[1] for t in tables])
+        day = weekend.astype(np.int64)
+        p[row] = prob[day, hours]
+        d[row] = mean[day, hours]
+        return prob
+
+    hourly = {}
+    for s, name in enumerate(SIGNALS):
+        hourly[s] = fill(spec.signals[name], 1 + s)
+    if step_times is not None:
+        for event in config.disruptions:
+            if event.kind != "behaviour-shift":
+                continue
+            if event.regions and region_name not in event.regions:
+                continue
+            if event.device_types and type_name not in event.device_types:
+                continue
+            s = SIGNALS.index(event.signal)  # type: ignore[arg-type]
+            inside = (step_times >= event.start) & (step_times < event.start + event.duration)
+            shifted = (hours - int(round(event.shift_hours))) % 24
+            values = hourly[s][weekend.astype(np.int64), shifted] * event.factor
+            p[1 + s, inside] = values[inside]
+    p = np.clip(p, 0.0, _P_MAX)
+    if spec.settled is not None:
+        fill(spec.settled, SETTLED)
+        p[SETTLED] = np.clip(p[SETTLED], 0.0, _P_MAX)
+        for name in spec.settled.turns_on:
+            row = 1 + SIGNALS.index(name)
+            # The settled state holds the signal on: its own chain fills the rest.
+            p[row] = np.clip(1.0 - (1.0 - p[row]) / (1.0 - p[SETTLED]), 0.0, _P_MAX)
+    return p, d
 
 
 @dataclass(frozen=True)
 class SignalTables:
-    """Per (group, signal, grid step) rates and prefix maps; groups are (type, region) pairs.
+    """Per (group, chain, grid step) rates, prefix maps and cumulative hazards; groups are
+    (type, region) pairs (index type * regions + region).
 
     ``origin_s`` is the simulated time of grid point 0 (negative: the grid starts before the
     horizon so that the chains start from their own law, not from an arbitrary state).
+    ``covers[g, s]`` says whether group g's settled state holds signal s on.
     """
 
     origin_s: float
     step_s: float
-    p: np.ndarray  # [G, S, K] on-probability per step
-    rate: np.ndarray  # [G, S, K] lambda = 1 / ((1 - p) d), 1/s
-    prefix_a: np.ndarray  # [G, S, K + 1] on-probability at grid point k starting "off" at point 0
-    prefix_log: np.ndarray  # [G, S, K + 1] cumulative lambda * h up to grid point k
-    mean_on_s: np.ndarray  # [G, S]
+    p: np.ndarray  # [G, C, K] on-probability per step
+    d: np.ndarray  # [G, C, K] mean on-duration per step, s
+    rate: np.ndarray  # [G, C, K] lambda = 1 / ((1 - p) d), 1/s
+    prefix_a: np.ndarray  # [G, C, K + 1] on-probability at grid point k starting "off" at point 0
+    prefix_log: np.ndarray  # [G, C, K + 1] cumulative lambda * h up to grid point k
+    cum_hazard: np.ndarray  # [2, G, C, K + 1] cumulative leaving rate * h from "off" (0) and "on" (1)
+    covers: np.ndarray  # [G, S] bool
+    has_settled: bool
+    # Every cumulative-hazard line rises from 0 to at most `line_gap - 1`: line j shifted up by
+    # j * line_gap makes one ascending array of them all, searched once for every target.
+    search_key: np.ndarray
+    line_gap: float
 
     @property
     def steps(self) -> int:
@@ -70,19 +162,25 @@ class SignalTables:
 
     def step_of(self, t: np.ndarray) -> np.ndarray:
         k = np.floor((t - self.origin_s) / self.step_s).astype(np.int64)
-        return np.clip(k, 0, self.steps - 1)
+        np.maximum(k, 0, out=k)
+        return np.minimum(k, self.steps - 1, out=k)
+
+    def _line(self, group: np.ndarray, chain: np.ndarray | int) -> np.ndarray:
+        return group.astype(np.int64) * self.p.shape[1] + chain
 
     def on_probability(
-        self, group: np.ndarray, signal: int, t_from: np.ndarray, q_from: np.ndarray, t_to: np.ndarray
+        self, group: np.ndarray, chain: np.ndarray | int, t_from: np.ndarray, q_from: np.ndarray, t_to: np.ndarray
     ) -> np.ndarray:
-        """Probability the signal is on at ``t_to`` given on-probability ``q_from`` at ``t_from``."""
+        """Probability the chain is on at ``t_to`` given on-probability ``q_from`` at ``t_from``."""
+        if not t_to.size:
+            return np.empty(0)
         steps = self.steps
         k0 = self.step_of(t_from)
         k1 = self.step_of(t_to)
-        line = group.astype(np.int64) * self.p.shape[1] + signal
+        line = self._line(group, chain)
         row = line * steps
         i0, i1 = row + k0, row + k1
-        p_flat, rate_flat = self._flat_p, self._flat_rate
+        p_flat, rate_flat = self.p.reshape(-1), self.rate.reshape(-1)
         p0, r0 = p_flat[i0], rate_flat[i0]
         # To the end of step k0 (or to t_to if it lies in the same step).
         end0 = np.minimum(self.origin_s + (k0 + 1) * self.step_s, t_to)
@@ -93,30 +191,68 @@ class SignalTables:
             prefix_row = line[later] * (steps + 1)
             j0 = prefix_row + k0[later] + 1
             j1 = prefix_row + k1[later]
-            a_flat, log_flat = self._flat_a, self._flat_log
+            a_flat, log_flat = self.prefix_a.reshape(-1), self.prefix_log.reshape(-1)
             decay = np.exp(-(log_flat[j1] - log_flat[j0]))
             ql = a_flat[j1] + decay * (q[later] - a_flat[j0])
             p1, r1 = p_flat[i1[later]], rate_flat[i1[later]]
             start1 = self.origin_s + k1[later] * self.step_s
             q[later] = p1 + (ql - p1) * np.exp(-r1 * np.maximum(t_to[later] - start1, 0.0))
-        return np.clip(q, 0.0, 1.0)
+        np.maximum(q, 0.0, out=q)
+        return np.minimum(q, 1.0, out=q)
 
-    @property
-    def _flat_p(self) -> np.ndarray:
-        return self.p.reshape(-1)
+    def hazard_rate(self, group: np.ndarray, chain: np.ndarray | int, t: np.ndarray, on: np.ndarray) -> np.ndarray:
+        """Rate (1/s) at which a chain in state ``on`` at ``t`` leaves it."""
+        k = self.step_of(t)
+        i = self._line(group, chain) * self.steps + k
+        rate, p = self.rate.reshape(-1)[i], self.p.reshape(-1)[i]
+        return np.where(on, rate * (1.0 - p), rate * p)
 
-    @property
-    def _flat_rate(self) -> np.ndarray:
-        return self.rate.reshape(-1)
+    def next_flip(
+        self, group: np.ndarray, chain: np.ndarray, t: np.ndarray, on: np.ndarray, e: np.ndarray
+    ) -> np.ndarray:
+        """Time of each chain's next change of state after ``t`` (s; inf past the tables' end):
+        the first t' with the integral of its leaving rate from t to t' equal to ``e`` (unit
+        exponential draws), the rate piecewise constant per step."""
+        steps = self.steps
+        line = self._line(group, chain) + np.where(on, self.p.shape[0] * self.p.shape[1], 0)
+        cum = self.cum_hazard.reshape(-1)  # lines of K + 1 points: [off lines..., on lines...]
+        k0 = self.step_of(t)
+        rate = self.hazard_rate(group, chain, t, on)
+        start = line * (steps + 1)
+        at_t = cum[start + k0] + rate * np.maximum(t - (self.origin_s + k0 * self.step_s), 0.0)
+        target = at_t + e
+        end = cum[start + steps]
+        inside = target < end
+        result = np.full(t.shape, np.inf)
+        if inside.any():
+            li = line[inside]
+            # One binary search over every line at once (see `search_key`).
+            j = np.searchsorted(self.search_key, target[inside] + li * self.line_gap, side="right") - 1
+            k = np.clip(j - li * (steps + 1), 0, steps - 1)
+            base = cum[li * (steps + 1) + k]
+            i = (li % (self.p.shape[0] * self.p.shape[1])) * steps + k
+            r, p = self.rate.reshape(-1)[i], self.p.reshape(-1)[i]
+            leave = np.where(on[inside], r * (1.0 - p), r * p)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                step_in = np.where(leave > 0, (target[inside] - base) / leave, 0.0)
+            when = self.origin_s + k * self.step_s + np.clip(step_in, 0.0, self.step_s)
+            result[inside] = np.maximum(when, t[inside])
+        return result
 
-    @property
-    def _flat_a(self) -> np.ndarray:
-        return self.prefix_a.reshape(-1)
+    def survival(self, group: np.ndarray, chain: np.ndarray | int, t0: np.ndarray, t1: np.ndarray,
+                 on: np.ndarray) -> np.ndarray:
+        """Probability that a chain in state ``on`` at ``t0`` has not left it by ``t1``:
+        exp(-integral of the leaving rate from t0 to t1)."""
+        steps = self.steps
+        line = self._line(group, chain) + np.where(on, self.p.shape[0] * self.p.shape[1], 0)
+        cum = self.cum_hazard.reshape(-1)
 
-    @property
-    def _flat_log(self) -> np.ndarray:
-        return self.prefix_log.reshape(-1)
+        def at(t: np.ndarray) -> np.ndarray:
+            k = self.step_of(t)
+            return cum[line * (steps + 1) + k] + self.hazard_rate(group, chain, t, on) * np.maximum(
+                t - (self.origin_s + k * self.step_s), 0.0)
 
+        return np.exp(-(at(t1) - at(t0)))
 
 
 def build_signal_tables(
@@ -124,16 +260,19 @@ def build_signal_tables(
 ) -> SignalTables:
     """Tables for every (type, region) group from ``begin_s`` minus a settling time to ``end_s``.
 
-    The settling time (12 mean on-durations, 6 hours to 3 days) lets each chain start from
-    its own law rather than an arbitrary state.
-
-    Behaviour-shift disruptions scale or move a signal's hourly on-probabilities for their
-    window, regions and device types.
+    The settling time (12 of the longest mean on-durations, 6 hours to 3 days) lets each
+    chain start from its own law rather than an arbitrary state.
     """
-    types = config.fleet.device_types
-    regions = config.fleet.regions
-    mean_on = np.array([[types[t].signals[s].mean_on for s in SIGNALS] for t in type_names])
-    warmup_s = float(min(3 * 86400.0, max(6 * 3600.0, 12 * mean_on.max())))
+    fleet = config.fleet
+    longest = 0.0
+    for t in type_names:
+        for r in region_names:
+            spec = fleet.group_spec(t, r)
+            patterns = [spec.signals[s] for s in SIGNALS] + ([spec.settled] if spec.settled is not None else [])
+            for pattern in patterns:
+                for weekend in (False, True):
+                    longest = max(longest, max(pattern.profile(weekend)[1]))
+    warmup_s = float(min(3 * 86400.0, max(6 * 3600.0, 12 * longest)))
     warmup_s = np.ceil(warmup_s / STEP_S) * STEP_S
     origin_s = min(begin_s, 0.0) - warmup_s
     # Put grid points on UTC quarter hours, whatever the horizon's start, so that each step
@@ -145,81 +284,36 @@ def build_signal_tables(
     step_times = origin_s + STEP_S * np.arange(steps)
 
     n_groups = len(type_names) * len(region_names)
-    p = np.empty((n_groups, len(SIGNALS), steps))
-    region_hours = {name: local_hours(regions[name].timezone, grid_start, steps) for name in region_names}
+    p = np.empty((n_groups, len(CHAINS), steps))
+    d = np.empty((n_groups, len(CHAINS), steps))
+    covers = np.zeros((n_groups, len(SIGNALS)), dtype=bool)
+    calendars = {}
+    for name in region_names:
+        region = fleet.regions[name]
+        hours, days = local_calendar(region.timezone, grid_start, steps)
+        calendars[name] = (hours, np.isin(days, sorted(region.weekend_isodays)))
     for ti, tname in enumerate(type_names):
-        hourly = np.array([types[tname].signals[s].hourly for s in SIGNALS])  # [S, 24]
         for ri, rname in enumerate(region_names):
             g = ti * len(region_names) + ri
-            hours = region_hours[rname].astype(np.int64)
-            p[g] = hourly[:, hours]
-            for event in config.disruptions:
-                if event.kind != "behaviour-shift":
-                    continue
-                if event.regions and rname not in event.regions:
-                    continue
-                if event.device_types and tname not in event.device_types:
-                    continue
-                s = SIGNALS.index(event.signal)  # type: ignore[arg-type]
-                inside = (step_times >= event.start) & (step_times < event.start + event.duration)
-                shifted = (hours - int(round(event.shift_hours))) % 24
-                values = hourly[s, shifted] * event.factor
-                p[g, s, inside] = values[inside]
-    p = np.clip(p, 0.0, _P_MAX)
-    group_mean_on = np.repeat(mean_on, len(region_names), axis=0)  # [G, S]
-    rate = 1.0 / ((1.0 - p) * group_mean_on[:, :, None])
+            hours, weekend = calendars[rname]
+            p[g], d[g] = chain_parameters(config, tname, rname, hours, weekend, step_times)
+            settled = fleet.group_spec(tname, rname).settled
+            if settled is not None:
+                covers[g] = [s in settled.turns_on for s in SIGNALS]
+    rate = 1.0 / ((1.0 - p) * d)
     decay = np.exp(-rate * STEP_S)
-    prefix_a = np.zeros((n_groups, len(SIGNALS), steps + 1))
+    prefix_a = np.zeros((n_groups, len(CHAINS), steps + 1))
     for k in range(steps):
         prefix_a[:, :, k + 1] = p[:, :, k] + (prefix_a[:, :, k] - p[:, :, k]) * decay[:, :, k]
-    prefix_log = np.concatenate([np.zeros((n_groups, len(SIGNALS), 1)), np.cumsum(rate * STEP_S, axis=2)], axis=2)
+    zero = np.zeros((n_groups, len(CHAINS), 1))
+    prefix_log = np.concatenate([zero, np.cumsum(rate * STEP_S, axis=2)], axis=2)
+    leave = np.stack([rate * p, rate * (1.0 - p)])  # from off: the on-rate; from on: 1/d
+    cum_hazard = np.concatenate([np.zeros((2, n_groups, len(CHAINS), 1)), np.cumsum(leave * STEP_S, axis=3)], axis=3)
+    top = float(cum_hazard[..., -1].max())
+    lines = cum_hazard.size // (steps + 1)
+    search_key = cum_hazard.reshape(-1) + np.repeat(np.arange(lines), steps + 1) * (top + 1.0)
     return SignalTables(
-        origin_s=origin_s,
-        step_s=STEP_S,
-        p=p,
-        rate=rate,
-        prefix_a=prefix_a,
-        prefix_log=prefix_log,
-        mean_on_s=group_mean_on,
+        origin_s=origin_s, step_s=STEP_S, p=p, d=d, rate=rate, prefix_a=prefix_a, prefix_log=prefix_log,
+        cum_hazard=cum_hazard, covers=covers, has_settled=bool(covers.any()), search_key=search_key,
+        line_gap=top + 1.0,
     )
-
-
-class SignalState:
-    """Per-device, per-signal last look: time and on-probability then (0/1 once seen).
-
-    Observations must move forward in time per device and signal; :meth:`observe` samples
-    the states at later times and records them, :meth:`probability` gives the on-probability
-    without drawing or recording (for measurements that must not disturb the run).
-    """
-
-    def __init__(self, tables: SignalTables, group: np.ndarray):
-        n = group.size
-        self.tables = tables
-        self.group = group
-        self.t_last = np.full((len(SIGNALS), n), tables.origin_s)
-        # At the grid origin each chain starts from the step's on-probability.
-        self.q_last = np.empty((len(SIGNALS), n))
-        for s in range(len(SIGNALS)):
-            self.q_last[s] = tables.p[group, s, 0]
-
-    def _probability(self, devices: np.ndarray, signal: int, t: np.ndarray) -> np.ndarray:
-        t_from = self.t_last[signal, devices]
-        # A look back in time (a measurement behind the run) reuses the last state.
-        t_eval = np.maximum(t, t_from)
-        return self.tables.on_probability(self.group[devices], signal, t_from, self.q_last[signal, devices], t_eval)
-
-    def observe(self, devices: np.ndarray, signal: int, t: np.ndarray, rng: np.random.Generator) -> np.ndarray:
-        """Sample whether ``signal`` is on for ``devices`` at times ``t``; record it."""
-        on = rng.random(devices.size) < self._probability(devices, signal, t)
-        self.t_last[signal, devices] = t
-        self.q_last[signal, devices] = on
-        return on
-
-    def probability(self, devices: np.ndarray, signal: int, t: np.ndarray) -> np.ndarray:
-        """On-probability of ``signal`` at ``t`` given what the run has seen (nothing recorded)."""
-        return self._probability(devices, signal, t)
-
-    def record(self, devices: np.ndarray, signal: int, t: np.ndarray, on: np.ndarray) -> None:
-        """Record known states (e.g. a signal seen on until a task ended)."""
-        self.t_last[signal, devices] = t
-        self.q_last[signal, devices] = on

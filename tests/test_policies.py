@@ -34,11 +34,15 @@ def test_quick_finish_accepts_faster_devices_than_first_come(results):
     assert predicted(results["quick-finish"]) < 0.8 * predicted(results["first-come"])
 
 
-def test_share_quota_brings_accepted_shares_closer_to_fleet_shares(results):
+def test_share_quota_brings_accepted_shares_closer_to_fleet_shares():
     def distance(result):
         rows = result.summary["bias"]["by_device_type"].values()
         return sum(abs(v["accepted_share"] - v["fleet_share"]) for v in rows)
-    assert distance(results["share-quota"]) < 0.5 * distance(results["first-come"])
+    # Budget phones whose batteries are often below the minimum: first come under-serves them.
+    low = ["fleet.device_types.budget-phone.battery_level.charging.mean=38%"]
+    first, quota = run("first-come", *low), run("share-quota", *low)
+    assert distance(first) > 0.05
+    assert distance(quota) < 0.5 * distance(first)
 
 
 def test_rested_first_reaches_at_least_as_many_devices(results):

@@ -53,6 +53,9 @@ def hostile_config() -> fleetsim.Config:
     types = raw["fleet"]["device_types"]
     types[HOSTILE_TYPE] = types.pop("budget-phone")
     regions = raw["fleet"]["regions"]
+    for region in regions.values():  # a region's own type mix names types too
+        if "budget-phone" in region.get("type_mix", {}):
+            region["type_mix"][HOSTILE_TYPE] = region["type_mix"].pop("budget-phone")
     regions[HOSTILE_REGION] = regions.pop("east-asia")
     raw["scenario"] = HOSTILE_SCENARIO
     return fleetsim.build_config(raw, "hostile.yaml", ["fleet.devices=20000", "horizon.duration=12h", "rounds.rest=4h"])

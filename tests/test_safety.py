@@ -277,6 +277,9 @@ def _hostile_fleet(tmp_path: Path) -> Path:
     types = raw["fleet"]["device_types"]
     for old, new in HOSTILE_TYPES.items():
         types[new] = types.pop(old)
+        for region in raw["fleet"]["regions"].values():  # a region's own type mix names types too
+            if old in region.get("type_mix", {}):
+                region["type_mix"][new] = region["type_mix"].pop(old)
     path = tmp_path / "fleets" / "hostile.yaml"
     path.parent.mkdir()
     path.write_text(yaml.safe_dump(raw, sort_keys=False), encoding="utf-8")

@@ -17,10 +17,11 @@ import pytest
 from scipy import linalg, stats
 
 import fleetsim
+from fleetsim.chains import SignalState
 from fleetsim.config import SIGNALS
 from fleetsim.fleet import sample_fleet
 from fleetsim.metrics import gini
-from fleetsim.signals import STEP_S, SignalState, build_signal_tables, local_hours
+from fleetsim.signals import CHAINS, STEP_S, build_signal_tables, local_hours
 
 TYPES = ("budget-phone", "midrange-phone", "flagship-phone", "tablet")
 ALPHA = 1e-3  # a goodness-of-fit test with a true model fails with probability 0.1%
@@ -207,11 +208,18 @@ def test_kth_report_time_follows_the_beta_law_of_order_statistics():
 # Kolmogorov equations for the two-state chain). fleetsim sets a = 1/d, b = p / ((1 - p) d).
 
 
+def _independent_weekdays() -> list[str]:
+    """Overrides that leave idle one chain of its own with no weekend values (no settled state)."""
+    return ([f"fleet.device_types.{t}.settled=null" for t in TYPES]
+            + [f"fleet.device_types.{t}.signals.idle.weekend=null" for t in TYPES])
+
+
 def _flat_signal_config(p_idle: float, mean_on: str, hourly: list[float] | None = None) -> fleetsim.Config:
     values = hourly if hourly is not None else [p_idle] * 24
     text = "[" + ", ".join(f"{v:.6f}" for v in values) + "]"
     overrides = [f"fleet.device_types.{t}.signals.idle.hourly={text}" for t in TYPES]
     overrides += [f"fleet.device_types.{t}.signals.idle.mean_on={mean_on}" for t in TYPES]
+    overrides += _independent_weekdays()
     return config_of(overrides + ["horizon.duration=1d"])
 
 
@@ -224,7 +232,7 @@ def test_chain_rates_give_the_stationary_on_fraction():
     p, d = 0.3, 40 * 60.0
     config = _flat_signal_config(p, "40m")
     _, tables = _tables(config)
-    idle = SIGNALS.index("idle")
+    idle = CHAINS.index("idle")
     a, b = 1.0 / d, p / ((1.0 - p) * d)
     assert np.allclose(tables.p[:, idle, :], p)
     assert np.allclose(tables.rate[:, idle, :], a + b, rtol=1e-12)
@@ -235,7 +243,7 @@ def test_chain_relaxes_from_off_as_exp_of_minus_a_plus_b_t():
     p, d = 0.3, 40 * 60.0
     config = _flat_signal_config(p, "40m")
     fleet, tables = _tables(config)
-    idle = SIGNALS.index("idle")
+    idle = CHAINS.index("idle")
     a, b = 1.0 / d, p / ((1.0 - p) * d)
     t = np.array([1.0, 60.0, 450.0, 899.0, 900.0, 1800.0, 5000.0, 20000.0, 80000.0])
     group = np.zeros(t.size, dtype=np.int64)
@@ -263,7 +271,7 @@ def test_time_average_of_a_sampled_chain_is_the_stationary_fraction():
     p, d = 0.65, 20 * 60.0
     config = _flat_signal_config(p, "20m")
     _, tables = _tables(config, end_s=7 * 86400.0)
-    idle = SIGNALS.index("idle")
+    idle = CHAINS.index("idle")
     n, looks = 400, 1000
     state = SignalState(tables, np.zeros(n, dtype=np.int64))
     rng = np.random.default_rng(8)
@@ -286,9 +294,9 @@ def test_prefix_maps_match_a_product_of_matrix_exponentials_over_changing_hours(
     hourly = [0.05 + 0.9 * (h % 7) / 6 for h in range(24)]
     config = _flat_signal_config(0.5, "35m", hourly)
     fleet, tables = _tables(config)
-    idle = SIGNALS.index("idle")
+    idle = CHAINS.index("idle")
     group = 3
-    d = tables.mean_on_s[group, idle]
+    d = tables.d[group, idle, 0]  # one mean on-duration in every hour
     t_from, t_to = -3000.0, 40_000.0 + 123.0
     probability = 1.0
     for q_from in (0.0, 1.0, 0.37):
@@ -432,14 +440,14 @@ def test_signal_tables_follow_local_time_across_the_dst_change():
     # Each hour its own on-probability, so the table shows which local hour it used.
     hourly = [0.02 + 0.04 * h for h in range(24)]
     overrides = [f"fleet.device_types.{t}.signals.idle.hourly=[{', '.join(f'{v:.2f}' for v in hourly)}]"
-                 for t in TYPES]
+                 for t in TYPES] + _independent_weekdays()
     config = config_of(overrides + ["horizon.start=2026-03-08T00:00:00Z", "horizon.duration=1d"])
     fleet, tables = _tables(config)
     region = fleet.region_names.index("north-atlantic")
     group = 0 * len(fleet.region_names) + region
     zone = ZoneInfo("America/New_York")
     start = config.horizon.start
-    idle = SIGNALS.index("idle")
+    idle = CHAINS.index("idle")
     for k in range(0, 96):
         t = k * STEP_S
         local = (start + timedelta(seconds=t + 1)).astimezone(zone).hour
@@ -591,7 +599,7 @@ def _census_fleet(rare: int = 15, small: int = 100):
     runtime.free_at[rng.random(fleet.size) < 0.3] = np.inf  # busy: never eligible
     seen = np.flatnonzero(rng.random(fleet.size) < 0.5)
     for s in range(len(SIGNALS)):
-        runtime.signals.record(seen, s, np.full(seen.size, 3600.0), rng.random(seen.size) < 0.5)
+        runtime.signals.record(seen, 1 + s, np.full(seen.size, 3600.0), rng.random(seen.size) < 0.5)
     rare_group = tablet * len(fleet.region_names) + last
     return runtime, rare_group
 

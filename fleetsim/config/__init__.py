@@ -6,11 +6,22 @@ raise :class:`~fleetsim.errors.ConfigError` whose lines each name the file, the 
 the bad value and what was expected.
 
 Modules, bottom up: ``fields`` (quantity types, traits, the strict base that refuses
-renamed keys), ``yamltext`` (the YAML reader), ``models`` (the sections of a file),
+renamed keys), ``yamltext`` (the YAML reader), ``devices`` (device types, signals, the
+settled state, regional adjustments), ``fleetspec`` (regions, the fleet mix, merged
+(type, region) specs), ``models`` (the other sections of a file),
 ``loading`` (overrides, validation, error lines, hash, schema), ``memory`` (the estimate
 that refuses a run too large for the machine).
 """
 
+from .devices import (
+    BatteryLevel,
+    BatteryLevels,
+    DeviceAdjustment,
+    DeviceType,
+    SettledPattern,
+    SignalPattern,
+    WeekendPattern,
+)
 from .fields import (
     MIN_STEP_S,
     RENAMED_KEYS,
@@ -22,26 +33,19 @@ from .fields import (
     SizeTrait,
     Trait,
 )
+from .fleetspec import MAX_NAME_LENGTH, WEEKDAYS, FleetSpec, Region, name_problem
 from .loading import apply_overrides, build_config, config_hash, config_schema, example_path, load_config
 from .memory import check_memory, estimate_memory, memory_limit
 from .models import (
-    MAX_NAME_LENGTH,
     MAX_TITLE_LENGTH,
     MIN_CHECKIN_S,
     MIN_CYCLE_S,
-    BatteryLevel,
-    BatteryLevels,
     Config,
-    DeviceType,
     Disruption,
-    FleetSpec,
     Horizon,
-    Region,
     RoundSettings,
     Selection,
-    SignalPattern,
     Workload,
-    name_problem,
 )
 from .yamltext import MAX_DEPTH, MAX_FILE_BYTES, MAX_NODES, load_yaml_text, read_yaml, structure_problem
 
@@ -63,6 +67,10 @@ __all__ = [
     "PowerTrait",
     "BitRateTrait",
     "SignalPattern",
+    "SettledPattern",
+    "WeekendPattern",
+    "DeviceAdjustment",
+    "WEEKDAYS",
     "BatteryLevel",
     "BatteryLevels",
     "DeviceType",

@@ -43,13 +43,24 @@ def build_config(raw: dict[str, Any], source: str = "<config>", overrides: list[
         raise ConfigError(_describe(exc, source, data)) from None
 
 
+def _unshared(node: Any) -> Any:
+    """A copy of a YAML tree in which no two places share a mapping or list: a file's aliases
+    (``*name``) become copies, so an override changes only the place its key path names. The
+    reader bounds the expanded size (MAX_NODES), so this copy is bounded too."""
+    if isinstance(node, dict):
+        return {key: _unshared(value) for key, value in node.items()}
+    if isinstance(node, list):
+        return [_unshared(value) for value in node]
+    return copy.copy(node)
+
+
 def apply_overrides(raw: dict[str, Any], overrides: list[str], source: str = "<config>") -> dict[str, Any]:
     """Return a copy of ``raw`` with each ``key.path=value`` set (value read as YAML).
 
     List items are addressed by index (``disruptions.0.factor``). Raises ConfigError for a
     malformed override.
     """
-    data = copy.deepcopy(raw)
+    data = _unshared(raw)
     problems = []
     for item in overrides:
         key, sep, text = item.partition("=")

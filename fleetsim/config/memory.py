@@ -13,9 +13,9 @@ from .models import _SETTLING_S, _TAIL_MARGIN_S, Config
 # on the example fleet (1,000 to 1,000,000 devices, 0.5 to 7 days, check-ins every 1 s to
 # 10 min: 250 to 500 MB, about 200 B per device and 850 B per participation), rounded up.
 _BASE_BYTES = 300e6  # interpreter, numpy, pandas, pyarrow, simpy
-_PER_DEVICE = 300.0  # traits, runtime state, signal state, output tables
+_PER_DEVICE = 340.0  # traits, runtime state, four chains' last looks, battery score, output tables
 _PER_TICK = 120.0  # one check-in tick of a collection window (ids, times, masks, gathered traits)
-_PER_STEP = 100.0  # one 15-minute grid step of one (type, region, signal) signal table
+_PER_STEP = 100.0  # one 15-minute grid step of one (type, region, chain) signal table
 _PER_PARTICIPATION = 1000.0  # one row of the event log, its frames, tables and the Parquet writer
 _PER_ROUND = 400.0
 _GRID_S = 900.0  # fleetsim.signals.STEP_S
@@ -38,7 +38,7 @@ def estimate_memory(config: Config, window_s: float) -> dict[str, float]:
     window = min(window_s, rounds.selection_timeout)
     ticks = n * (window / rounds.checkin_every + 1.0)
     steps = (span + _SETTLING_S + rounds.selection_timeout + rounds.report_deadline + _TAIL_MARGIN_S) / _GRID_S
-    lines = len(fleet.device_types) * len(fleet.regions) * len(SIGNALS)
+    lines = len(fleet.device_types) * len(fleet.regions) * (len(SIGNALS) + 1)  # the settled chain too
     cycle = rounds.aggregation_time + min(rounds.selection_timeout, rounds.report_deadline, _typical_task_s(config))
     n_rounds = span / max(cycle, MIN_STEP_S) + 1.0
     per_device = n * (span / max(rounds.rest, rounds.checkin_every) + 1.0)

@@ -1,182 +1,37 @@
-"""The validated model of a fleet file: fleet, workload, rounds, selection, horizon, disruptions."""
+"""The validated model of a fleet file: fleet (:mod:`.devices`), workload, rounds, selection,
+horizon, disruptions."""
 
 from __future__ import annotations
 
 import math
-import re
-import unicodedata
 from datetime import datetime, timezone
 from typing import Any, Literal
-from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
-from pydantic import Field, field_serializer, field_validator, model_validator
+from pydantic import (
+    Field,
+    field_serializer,
+    field_validator,
+    model_validator,
+)
 
 from ..units import format_instant
 from .fields import (
     _ALL_SIGNALS,
-    SIGNALS,
-    BitRateTrait,
     Count,
     Duration,
-    DurationTrait,
-    EnergyTrait,
     Hazard,
     Instant,
     Percentage,
     PositiveDuration,
-    Power,
-    PowerTrait,
-    Probability,
     Real,
     SignalName,
     Size,
-    SizeTrait,
-    Trait,
     _at,
     _show,
     _Strict,
 )
+from .fleetspec import FleetSpec, name_problem
 from .yamltext import structure_problem
-
-
-class SignalPattern(_Strict):
-    """One diurnal on/off signal: 24 on-probabilities by local hour and a mean on-duration.
-
-    With on-probability p and mean on-duration d the chain leaves "on" at rate 1/d and
-    leaves "off" at rate p / ((1 - p) d), so its stationary on-fraction is p.
-    """
-
-    hourly: list[Probability] = Field(min_length=24, max_length=24)
-    mean_on: PositiveDuration
-
-
-class BatteryLevel(_Strict):
-    """Battery level (a percentage, ``72%``) seen at check-in: a Beta distribution by mean and sd."""
-
-    mean: Percentage = Field(gt=0, lt=100)
-    sd: Percentage = Field(gt=0, lt=50)
-
-    @model_validator(mode="after")
-    def _feasible(self) -> BatteryLevel:
-        m, s = self.mean / 100, self.sd / 100
-        if s * s >= m * (1 - m):
-            raise ValueError(
-                f"sd {self.sd} is too large for mean {self.mean}: need sd^2 < mean (100 - mean)"
-            )
-        return self
-
-
-class BatteryLevels(_Strict):
-    charging: BatteryLevel = BatteryLevel(mean=75, sd=18)
-    unplugged: BatteryLevel = BatteryLevel(mean=55, sd=22)
-
-
-class DeviceType(_Strict):
-    """A kind of device: its fleet share, traits and diurnal signals."""
-
-    share: Probability
-    sample_cost: DurationTrait = Field(description="training time per local sample per epoch, s",
-                                       examples=[{"median": "110ms", "spread": 0.3}])
-    memory: SizeTrait = Field(description="memory available to a training task, bytes",
-                              examples=[{"median": "3GB", "spread": 0.25}])
-    battery_capacity: EnergyTrait = Field(description="battery capacity, Wh",
-                                          examples=[{"median": "14Wh", "spread": 0.1}])
-    train_power: PowerTrait = Field(description="power draw while training, W",
-                                    examples=[{"median": "3.2W", "spread": 0.2}])
-    radio_power: Power = Field(default=1.0, ge=0, description="power draw while transferring, W")
-    charge_power: Power = Field(default=10.0, ge=0, description="charger power while plugged in, W")
-    download_rate: BitRateTrait = Field(description="download bandwidth, bit/s",
-                                        examples=[{"median": "14Mbit/s", "spread": 0.9}])
-    upload_rate: BitRateTrait = Field(description="upload bandwidth, bit/s",
-                                      examples=[{"median": "4Mbit/s", "spread": 0.9}])
-    samples: Trait = Field(description="local training samples", examples=[{"median": 180, "spread": 1.6}])
-    battery_level: BatteryLevels = BatteryLevels()
-    signals: dict[str, SignalPattern]
-
-    @field_validator("signals")
-    @classmethod
-    def _all_signals(cls, value: dict[str, SignalPattern]) -> dict[str, SignalPattern]:
-        missing = [s for s in SIGNALS if s not in value]
-        unknown = [s for s in value if s not in SIGNALS]
-        if unknown:
-            raise ValueError(f"unknown signal(s) {', '.join(unknown)}; expected {', '.join(SIGNALS)}")
-        if missing:
-            raise ValueError(f"missing signal(s) {', '.join(missing)}; expected all of {', '.join(SIGNALS)}")
-        return value
-
-
-class Region(_Strict):
-    """A region: its fleet share and IANA time zone."""
-
-    share: Probability
-    timezone: str
-
-    @field_validator("timezone")
-    @classmethod
-    def _known_zone(cls, value: str) -> str:
-        # A zone key is a relative path of plain parts; anything else (a folder such as
-        # 'America', '..', a NUL, a 300-character name) must not reach the file system.
-        if not _ZONE_RE.fullmatch(value):
-            raise ValueError(f"unknown IANA time zone {value!r}")
-        try:
-            ZoneInfo(value)
-        except (ZoneInfoNotFoundError, ValueError, OSError, UnicodeError) as exc:
-            raise ValueError(f"unknown IANA time zone {value!r}") from exc
-        return value
-
-
-_ZONE_RE = re.compile(r"[A-Za-z0-9_+-]{1,40}(/[A-Za-z0-9_+-]{1,40}){0,3}")
-
-# Characters that would let a name break a line or reorder the text around it on display:
-# bidirectional embeddings, overrides and isolates (Unicode UAX #9) and the implicit marks.
-_BIDI_CONTROLS = frozenset("\u202a\u202b\u202c\u202d\u202e\u2066\u2067\u2068\u2069\u200e\u200f\u061c")
-# Unicode general categories: Cc control (NUL, C0, DEL, C1), Zl line separator, Zp paragraph
-# separator, Cs surrogate, Cn unassigned.
-_REFUSED_CATEGORIES = frozenset({"Cc", "Zl", "Zp", "Cs", "Cn"})
-MAX_NAME_LENGTH = 80
-"""Longest device type name, region name or scenario title, in characters."""
-
-
-def name_problem(name: str, limit: int = MAX_NAME_LENGTH) -> str | None:
-    """Why ``name`` cannot be a device type name, region name or scenario title, or None.
-
-    Names are shown in tables, reports and terminals: they must be non-blank, at most
-    ``limit`` characters, and hold no control characters, line or paragraph separators or
-    bidirectional controls.
-    """
-    if not name.strip():
-        return "must not be blank"
-    if len(name) > limit:
-        return f"must be at most {limit} characters"
-    for char in name:
-        if char in _BIDI_CONTROLS or unicodedata.category(char) in _REFUSED_CATEGORIES:
-            return (f"must not hold control characters, line or paragraph separators or "
-                    f"bidirectional controls (holds U+{ord(char):04X})")
-    return None
-
-
-def _check_shares(kind: str, items: dict[str, Any]) -> None:
-    total = sum(item.share for item in items.values())
-    if not math.isclose(total, 1.0, abs_tol=1e-6):
-        raise ValueError(f"{kind} shares must sum to 1, they sum to {total:.6g}")
-
-
-class FleetSpec(_Strict):
-    devices: Count = Field(gt=0, le=100_000_000)
-    device_types: dict[str, DeviceType] = Field(min_length=1)
-    regions: dict[str, Region] = Field(min_length=1)
-
-    @model_validator(mode="after")
-    def _shares(self) -> FleetSpec:
-        for kind, names in (("device type", self.device_types), ("region", self.regions)):
-            for name in names:
-                problem = name_problem(name)
-                if problem:
-                    key = "device_types" if kind == "device type" else "regions"
-                    raise ValueError(_at(key, f"{kind} name {_show(name)} {problem}"))
-        _check_shares("device type", self.device_types)
-        _check_shares("region", self.regions)
-        return self
 
 
 class Workload(_Strict):

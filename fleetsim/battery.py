@@ -1,0 +1,106 @@
+"""Battery levels that follow the device: a law at every look, memory between looks.
+
+The law. At a look, a device's level has its (type, region) Beta law for its charging state
+(``battery_level.charging`` / ``.unplugged``, by mean and sd). Each device carries a latent
+standard-normal score Z; the level is F^-1(Phi(Z)), F the Beta law of the charging state
+then (a Gaussian copula). Between looks the score is an Ornstein-Uhlenbeck process with time
+constant ``battery_level.correlation_time`` (tau): given Z at t0, the score at t is
+w Z + sqrt(1 - w^2) N(0, 1) with w = exp(-(t - t0) / tau). A device with no history draws
+Z ~ N(0, 1). So the level at every look has exactly the documented law, and two looks close
+together see nearly the same level.
+
+During a task the level moves physically (:mod:`fleetsim.client`); at the participation's
+end the level reached is recorded as the score that gives it under the law of the charging
+state then, so the next look starts from it.
+
+Sources (from memory): the Ornstein-Uhlenbeck transition law (Uhlenbeck and Ornstein,
+Physical Review 36, 1930); the Gaussian copula (Nelsen, An Introduction to Copulas, 2nd ed.,
+Springer 2006, section 2.3).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import special
+
+from .config import Config
+
+__all__ = ["BatteryState", "beta_params", "Z_GRID"]
+
+Z_GRID = np.linspace(-8.5, 8.5, 4097)
+"""Scores at which each level law's quantile function is tabulated (linear in between)."""
+
+
+def beta_params(mean_pct: float, sd_pct: float) -> tuple[float, float]:
+    """Beta(a, b) on [0, 1] with the given mean and sd, in percent (method of moments)."""
+    m, s = mean_pct / 100.0, sd_pct / 100.0
+    k = m * (1.0 - m) / (s * s) - 1.0
+    return m * k, (1.0 - m) * k
+
+
+class BatteryState:
+    """Each device's battery score and the time it was set (NaN: no history yet)."""
+
+    def __init__(self, config: Config, type_names: tuple[str, ...], region_names: tuple[str, ...], group: np.ndarray):
+        self.group = group
+        n_groups = len(type_names) * len(region_names)
+        # Per group, [unplugged, charging]: Beta parameters, quantile table, correlation time.
+        self.params = np.empty((n_groups, 2, 2))
+        self.tau_s = np.empty(n_groups)
+        for ti, tname in enumerate(type_names):
+            for ri, rname in enumerate(region_names):
+                g = ti * len(region_names) + ri
+                levels = config.fleet.group_spec(tname, rname).battery_level
+                self.params[g, 0] = beta_params(levels.unplugged.mean, levels.unplugged.sd)
+                self.params[g, 1] = beta_params(levels.charging.mean, levels.charging.sd)
+                self.tau_s[g] = levels.correlation_time
+        u = special.ndtr(Z_GRID)
+        self.quantiles = 100.0 * special.betaincinv(self.params[..., 0, None], self.params[..., 1, None], u)
+        self.min_battery = config.workload.min_battery
+        floor = self.min_battery / 100.0
+        # The score below which a level falls short of the workload's minimum, [G, 2].
+        self.z_floor = special.ndtri(special.betainc(self.params[..., 0], self.params[..., 1], floor))
+        self.score = np.zeros(group.size)
+        self.since = np.full(group.size, np.nan)
+
+    def _weight(self, devices: np.ndarray, t: np.ndarray) -> np.ndarray:
+        since = self.since[devices]
+        w = np.exp(-np.maximum(t - since, 0.0) / self.tau_s[self.group[devices]])
+        return np.where(np.isnan(since), 0.0, w)
+
+    def _level(self, groups: np.ndarray, charging: np.ndarray, z: np.ndarray) -> np.ndarray:
+        """Level (%) of score ``z`` under each device's law (linear in the quantile table)."""
+        size = Z_GRID.size
+        x = np.clip((z - Z_GRID[0]) / (Z_GRID[1] - Z_GRID[0]), 0.0, size - 1.000001)
+        i = x.astype(np.int64)
+        flat = self.quantiles.reshape(-1)
+        at = (groups.astype(np.int64) * 2 + charging) * size + i
+        lo, hi = flat[at], flat[at + 1]
+        return lo + (x - i) * (hi - lo)
+
+    def look(self, devices: np.ndarray, t: np.ndarray, charging: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+        """The level (%) each device shows at a look at ``t`` with this charging state; recorded."""
+        w = self._weight(devices, t)
+        z = w * self.score[devices] + np.sqrt(1.0 - w * w) * rng.standard_normal(devices.size)
+        self.score[devices] = z
+        self.since[devices] = t
+        return self._level(self.group[devices], charging, z)
+
+    def record(self, devices: np.ndarray, t: np.ndarray, charging: np.ndarray, level_pct: np.ndarray) -> None:
+        """A task left each device at ``level_pct`` at ``t`` with this charging state."""
+        g = self.group[devices]
+        c = charging.astype(np.int64)
+        u = special.betainc(self.params[g, c, 0], self.params[g, c, 1], np.clip(level_pct / 100.0, 0.0, 1.0))
+        self.score[devices] = np.clip(special.ndtri(u), Z_GRID[0], Z_GRID[-1])
+        self.since[devices] = t
+
+    def ok_probability(self, devices: np.ndarray, t: np.ndarray, charging: bool) -> np.ndarray:
+        """Probability that a look at ``t`` with this charging state finds the level at or above
+        the workload's minimum, given the history (nothing drawn or recorded)."""
+        w = self._weight(devices, t)
+        floor = self.z_floor[self.group[devices], int(charging)]
+        spread = np.sqrt(1.0 - w * w)
+        mean = w * self.score[devices]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            p = special.ndtr((mean - floor) / spread)
+        return np.where(spread > 0, p, (mean >= floor).astype(float))

@@ -1,0 +1,123 @@
+"""Each device's chains as the run has seen them: last looks, and exact paths during tasks.
+
+:class:`SignalState` keeps, per device and chain (:data:`fleetsim.signals.CHAINS`), the last
+time the run looked and the on-probability then (0/1 once seen); :meth:`SignalState.paths`
+follows chains exactly through a task (:meth:`fleetsim.signals.SignalTables.next_flip`).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .signals import CHAINS, SETTLED, SignalTables
+
+__all__ = ["SignalState", "Paths"]
+
+
+@dataclass
+class Paths:
+    """Chain paths of some devices from ``t0``: ``state0`` [C, n] (bool) at ``t0`` and
+    ``flips`` [C, n, F], the times each chain changed state, ascending, inf-padded.
+
+    Followed to each device's ``t_stop``: nothing is known of a chain after it.
+    """
+
+    t0: np.ndarray
+    state0: np.ndarray
+    flips: np.ndarray
+    t_stop: np.ndarray
+    followed: np.ndarray  # [C] bool: which chains the paths follow
+
+    def state_at(self, t: np.ndarray) -> np.ndarray:
+        """[C, n] state of each chain at times ``t`` (s, one per device, at most ``t_stop``)."""
+        odd = (self.flips <= t[None, :, None]).sum(axis=2) % 2 == 1
+        return self.state0 ^ odd
+
+
+class SignalState:
+    """Per-device, per-chain last look: time and on-probability then (0/1 once seen).
+
+    Observations must move forward in time per device and chain; :meth:`observe` samples
+    the states at later times and records them, :meth:`probability` gives the on-probability
+    without drawing or recording (for measurements that must not disturb the run).
+    """
+
+    def __init__(self, tables: SignalTables, group: np.ndarray):
+        n = group.size
+        self.tables = tables
+        self.group = group
+        self.t_last = np.full((len(CHAINS), n), tables.origin_s)
+        # At the grid origin each chain starts from the step's on-probability.
+        self.q_last = np.empty((len(CHAINS), n))
+        for c in range(len(CHAINS)):
+            self.q_last[c] = tables.p[group, c, 0]
+
+    def _probability(self, devices: np.ndarray, chain: int, t: np.ndarray) -> np.ndarray:
+        t_from = self.t_last[chain, devices]
+        # A look back in time (a measurement behind the run) reuses the last state.
+        t_eval = np.maximum(t, t_from)
+        return self.tables.on_probability(self.group[devices], chain, t_from, self.q_last[chain, devices], t_eval)
+
+    def observe(self, devices: np.ndarray, chain: int, t: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+        """Sample whether ``chain`` is on for ``devices`` at times ``t``; record it."""
+        on = rng.random(devices.size) < self._probability(devices, chain, t)
+        self.t_last[chain, devices] = t
+        self.q_last[chain, devices] = on
+        return on
+
+    def probability(self, devices: np.ndarray, chain: int, t: np.ndarray) -> np.ndarray:
+        """On-probability of ``chain`` at ``t`` given what the run has seen (nothing recorded)."""
+        return self._probability(devices, chain, t)
+
+    def record(self, devices: np.ndarray, chain: int, t: np.ndarray, on: np.ndarray) -> None:
+        """Record known states (e.g. a chain's state when a task ended)."""
+        self.t_last[chain, devices] = t
+        self.q_last[chain, devices] = on
+
+    def signals_on(self, devices: np.ndarray, chains: np.ndarray) -> np.ndarray:
+        """[S, n] whether each signal is on, from the chains' states [C, n]."""
+        covers = self.tables.covers[self.group[devices]].T  # [S, n]
+        return chains[1:] | (chains[SETTLED][None, :] & covers)
+
+    def paths(self, devices: np.ndarray, t0: np.ndarray, t_stop: np.ndarray, rng: np.random.Generator,
+              own: list[int] | None = None) -> Paths:
+        """The chains' exact paths for ``devices`` from ``t0`` to ``t_stop`` (s): the settled
+        chain (when the fleet has one) and the own chains in ``own`` (default: all).
+
+        The states at ``t0`` are drawn given the last looks (exactly the recorded 0/1 for a
+        chain seen at ``t0``); nothing is recorded here. A chain not followed keeps its last
+        look (the chains are independent) and shows as off with no changes in the paths;
+        :attr:`Paths.followed` says which were."""
+        n = devices.size
+        tables = self.tables
+        group = self.group[devices]
+        followed = np.zeros(len(CHAINS), dtype=bool)
+        followed[own if own is not None else list(range(1, len(CHAINS)))] = True
+        followed[SETTLED] = tables.has_settled
+        state0 = np.zeros((len(CHAINS), n), dtype=bool)
+        for c in np.flatnonzero(followed):
+            state0[c] = rng.random(n) < self._probability(devices, int(c), t0)
+        flips: list[np.ndarray] = []
+        state = state0.copy()
+        now = np.broadcast_to(t0, (len(CHAINS), n)).copy()
+        chain_index = np.broadcast_to(np.arange(len(CHAINS))[:, None], (len(CHAINS), n))
+        groups = np.broadcast_to(group[None, :], (len(CHAINS), n))
+        stops = np.broadcast_to(t_stop[None, :], (len(CHAINS), n))
+        active = np.repeat(followed[:, None], n, axis=1)
+        while active.any():
+            idx = np.flatnonzero(active.reshape(-1))
+            e = rng.exponential(1.0, size=idx.size)
+            when = tables.next_flip(groups.reshape(-1)[idx], chain_index.reshape(-1)[idx], now.reshape(-1)[idx],
+                                    state.reshape(-1)[idx], e)
+            step = np.full(len(CHAINS) * n, np.inf)
+            flipped = when <= stops.reshape(-1)[idx]
+            step[idx[flipped]] = when[flipped]
+            flips.append(step.reshape(len(CHAINS), n))
+            now.reshape(-1)[idx[flipped]] = when[flipped]
+            state.reshape(-1)[idx[flipped]] ^= True
+            active.reshape(-1)[idx[~flipped]] = False
+        stacked = np.stack(flips, axis=2) if flips else np.full((len(CHAINS), n, 0), np.inf)
+        return Paths(t0=np.asarray(t0, dtype=float), state0=state0, flips=stacked, t_stop=np.asarray(t_stop),
+                     followed=followed)
