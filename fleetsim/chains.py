@@ -67,6 +67,29 @@ class SignalState:
         self.q_last[chain, devices] = on
         return on
 
+    def _probabilities(self, devices: np.ndarray, chains: list[int], t: np.ndarray) -> np.ndarray:
+        """[len(chains), n] on-probabilities at ``t`` of several chains, in one pass."""
+        rows = np.asarray(chains, dtype=np.int64)[:, None]
+        t_from = self.t_last[rows, devices[None, :]]
+        t_eval = np.maximum(t[None, :], t_from)
+        shape = t_from.shape
+        group = np.broadcast_to(self.group[devices][None, :], shape).reshape(-1)
+        chain = np.broadcast_to(rows, shape).reshape(-1)
+        q = self.tables.on_probability(group, chain, t_from.reshape(-1), self.q_last[rows, devices[None, :]].reshape(-1),
+                                       t_eval.reshape(-1))
+        return q.reshape(shape)
+
+    def observe_chains(self, devices: np.ndarray, chains: list[int], t: np.ndarray,
+                       rng: np.random.Generator) -> np.ndarray:
+        """Sample several chains of ``devices`` at times ``t`` at once, [len(chains), n]; record them."""
+        if not chains:
+            return np.zeros((0, devices.size), dtype=bool)
+        on = rng.random((len(chains), devices.size)) < self._probabilities(devices, chains, t)
+        rows = np.asarray(chains, dtype=np.int64)[:, None]
+        self.t_last[rows, devices[None, :]] = t[None, :]
+        self.q_last[rows, devices[None, :]] = on
+        return on
+
     def probability(self, devices: np.ndarray, chain: int, t: np.ndarray) -> np.ndarray:
         """On-probability of ``chain`` at ``t`` given what the run has seen (nothing recorded)."""
         return self._probability(devices, chain, t)
@@ -97,8 +120,9 @@ class SignalState:
         followed[own if own is not None else list(range(1, len(CHAINS)))] = True
         followed[SETTLED] = tables.has_settled
         state0 = np.zeros((len(CHAINS), n), dtype=bool)
-        for c in np.flatnonzero(followed):
-            state0[c] = rng.random(n) < self._probability(devices, int(c), t0)
+        drawn = [int(c) for c in np.flatnonzero(followed)]
+        if drawn and n:
+            state0[drawn] = rng.random((len(drawn), n)) < self._probabilities(devices, drawn, np.asarray(t0, float))
         flips: list[np.ndarray] = []
         state = state0.copy()
         now = np.broadcast_to(t0, (len(CHAINS), n)).copy()

@@ -135,25 +135,28 @@ class FleetRuntime:
         return positions[in_time], battery[in_time], charging[in_time]
 
     def _eligible_once(self, devices: np.ndarray, times: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """:meth:`eligible` for ticks of distinct devices."""
+        """:meth:`eligible` for ticks of distinct devices.
+
+        The settled chain and the own chain of every signal that matters (the required ones
+        and charging) are sampled at each tick in one pass: a chain looked at but not needed
+        (its signal already held on by the settled state, or an earlier signal off) is still a
+        true look at an independent chain, so the run stays exact."""
         rng = self.rngs["checkin"]
         signals = self.signals
-        live = np.arange(devices.size)
-        covers = self.tables.covers[self.group[devices]]  # [n, S]
-        settled = np.zeros(devices.size, dtype=bool)
+        n = devices.size
         if self.tables.has_settled:
             settled = signals.observe(devices, SETTLED, times, rng)
+        else:
+            settled = np.zeros(n, dtype=bool)
+        wanted = self.required + ([] if _CHARGING in self.required else [_CHARGING])
+        own = signals.observe_chains(devices, [1 + s for s in wanted], times, rng)
+        covers = self.tables.covers[self.group[devices]]  # [n, S]
+        on = {s: own[i] | (settled & covers[:, s]) for i, s in enumerate(wanted)}
+        ok = np.ones(n, dtype=bool)
         for s in self.required:
-            held = settled[live] & covers[live, s]  # the settled state holds the signal on
-            look = live[~held]
-            on = np.ones(live.size, dtype=bool)
-            on[~held] = signals.observe(devices[look], 1 + s, times[look], rng)
-            live = live[on]
-        charging = np.ones(live.size, dtype=bool)
-        if _CHARGING not in self.required:
-            held = settled[live] & covers[live, _CHARGING]
-            look = live[~held]
-            charging[~held] = signals.observe(devices[look], 1 + _CHARGING, times[look], rng)
+            ok &= on[s]
+        live = np.flatnonzero(ok)
+        charging = on[_CHARGING][live]
         battery = self.battery.look(devices[live], times[live], charging, self.rngs["battery"])
         ok = battery >= self.min_battery
         return live[ok], battery[ok], charging[ok]

@@ -223,7 +223,7 @@ def test_frames_carry_the_documented_labels(base):
 def test_round_checkins_are_the_eligible_checkins_of_the_selection():
     # First-come accepts each eligible check-in as it comes, so a round that fills sees exactly
     # its accepted devices' check-ins: none after the selection ends (docs/metrics.md).
-    result = run("fleet.devices=3000", "horizon.duration=6h", "rounds.rest=30m")
+    result = run("fleet.devices=3000", "horizon.duration=12h", "rounds.rest=30m")
     rounds = result.rounds
     full = rounds["accepted"] == result.config.rounds.accept_count
     assert full.sum() > 10
