@@ -55,7 +55,10 @@ class BatteryState:
                 self.params[g, 1] = beta_params(levels.charging.mean, levels.charging.sd)
                 self.tau_s[g] = levels.correlation_time
         u = special.ndtr(Z_GRID)
-        self.quantiles = 100.0 * special.betaincinv(self.params[..., 0, None], self.params[..., 1, None], u)
+        # Tabulate each distinct law once (groups often share their levels).
+        laws, which = np.unique(self.params.reshape(-1, 2), axis=0, return_inverse=True)
+        table = 100.0 * special.betaincinv(laws[:, 0, None], laws[:, 1, None], u)
+        self.quantiles = table[which.reshape(-1)].reshape(n_groups, 2, Z_GRID.size)
         self.min_battery = config.workload.min_battery
         floor = self.min_battery / 100.0
         # The score below which a level falls short of the workload's minimum, [G, 2].

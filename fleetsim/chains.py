@@ -75,8 +75,8 @@ class SignalState:
         shape = t_from.shape
         group = np.broadcast_to(self.group[devices][None, :], shape).reshape(-1)
         chain = np.broadcast_to(rows, shape).reshape(-1)
-        q = self.tables.on_probability(group, chain, t_from.reshape(-1), self.q_last[rows, devices[None, :]].reshape(-1),
-                                       t_eval.reshape(-1))
+        q_from = self.q_last[rows, devices[None, :]].reshape(-1)
+        q = self.tables.on_probability(group, chain, t_from.reshape(-1), q_from, t_eval.reshape(-1))
         return q.reshape(shape)
 
     def observe_chains(self, devices: np.ndarray, chains: list[int], t: np.ndarray,
@@ -89,6 +89,10 @@ class SignalState:
         self.t_last[rows, devices[None, :]] = t[None, :]
         self.q_last[rows, devices[None, :]] = on
         return on
+
+    def probabilities(self, devices: np.ndarray, chains: list[int], t: np.ndarray) -> np.ndarray:
+        """[len(chains), n] on-probabilities at ``t`` given what the run has seen (nothing recorded)."""
+        return self._probabilities(devices, chains, t)
 
     def probability(self, devices: np.ndarray, chain: int, t: np.ndarray) -> np.ndarray:
         """On-probability of ``chain`` at ``t`` given what the run has seen (nothing recorded)."""
@@ -120,9 +124,14 @@ class SignalState:
         followed[own if own is not None else list(range(1, len(CHAINS)))] = True
         followed[SETTLED] = tables.has_settled
         state0 = np.zeros((len(CHAINS), n), dtype=bool)
-        drawn = [int(c) for c in np.flatnonzero(followed)]
-        if drawn and n:
-            state0[drawn] = rng.random((len(drawn), n)) < self._probabilities(devices, drawn, np.asarray(t0, float))
+        t0 = np.asarray(t0, dtype=float)
+        for c in np.flatnonzero(followed):
+            # A chain seen at t0 (as at a check-in) is in its recorded state; the others are drawn.
+            state0[c] = self.q_last[c, devices] > 0.5
+            unseen = np.flatnonzero(self.t_last[c, devices] != t0)
+            if unseen.size:
+                q = self._probability(devices[unseen], int(c), t0[unseen])
+                state0[c, unseen] = rng.random(unseen.size) < q
         flips: list[np.ndarray] = []
         state = state0.copy()
         now = np.broadcast_to(t0, (len(CHAINS), n)).copy()

@@ -108,10 +108,13 @@ def sample_fleet(config: Config, seed: int) -> Fleet:
         for key in ("sample_cost_s", "memory_bytes", "battery_wh", "train_power_w", "radio_power_w",
                     "charge_power_w", "down_mbps", "up_mbps", "samples")
     }
+    by_pair = np.argsort(pair, kind="stable")
+    bounds = np.concatenate([[0], np.cumsum(np.bincount(pair, minlength=joint.size))])
     for index, tname in enumerate(type_names):
         for r, rname in enumerate(region_names):
             kind = spec.group_spec(tname, rname)
-            members = np.flatnonzero((device_type == index) & (region == r))
+            g = index * len(region_names) + r
+            members = by_pair[bounds[g]:bounds[g + 1]]  # in device order
             count = members.size
             traits = {  # array -> (trait, its unit per array unit)
                 "sample_cost_s": (kind.sample_cost, 1.0),

@@ -137,9 +137,10 @@ class FleetRuntime:
     def _eligible_once(self, devices: np.ndarray, times: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """:meth:`eligible` for ticks of distinct devices.
 
-        The settled chain and the own chain of every signal that matters (the required ones
-        and charging) are sampled at each tick in one pass: a chain looked at but not needed
-        (its signal already held on by the settled state, or an earlier signal off) is still a
+        The settled chain is sampled first, then the own chain of the first required signal
+        where the settled state does not hold it on, then, for the ticks still eligible, the
+        own chains of the other signals that matter (required, and charging) in one pass: a
+        chain looked at but not needed (its signal held on by the settled state) is still a
         true look at an independent chain, so the run stays exact."""
         rng = self.rngs["checkin"]
         signals = self.signals
@@ -148,11 +149,23 @@ class FleetRuntime:
             settled = signals.observe(devices, SETTLED, times, rng)
         else:
             settled = np.zeros(n, dtype=bool)
-        wanted = self.required + ([] if _CHARGING in self.required else [_CHARGING])
-        own = signals.observe_chains(devices, [1 + s for s in wanted], times, rng)
         covers = self.tables.covers[self.group[devices]]  # [n, S]
-        on = {s: own[i] | (settled & covers[:, s]) for i, s in enumerate(wanted)}
         ok = np.ones(n, dtype=bool)
+        wanted = self.required + ([] if _CHARGING in self.required else [_CHARGING])
+        on: dict[int, np.ndarray] = {}
+        if self.required:  # the first required signal prunes most ticks: look at it alone first
+            first = self.required[0]
+            held = settled & covers[:, first]
+            look = np.flatnonzero(~held)
+            on[first] = held.copy()
+            on[first][look] = signals.observe(devices[look], 1 + first, times[look], rng)
+            ok = on[first].copy()
+        live = np.flatnonzero(ok)
+        rest = [s for s in wanted if s not in on]
+        own = signals.observe_chains(devices[live], [1 + s for s in rest], times[live], rng)
+        for i, s in enumerate(rest):
+            on[s] = np.zeros(n, dtype=bool)
+            on[s][live] = own[i] | (settled[live] & covers[live, s])
         for s in self.required:
             ok &= on[s]
         live = np.flatnonzero(ok)
@@ -261,8 +274,11 @@ class FleetRuntime:
         times = np.full(devices.size, t)
         signals, battery = self.signals, self.battery
         covers = self.tables.covers[self.group[devices]]  # [n, S]
-        own = {s: signals.probability(devices, 1 + s, times) for s in set(self.required) | {_CHARGING}}
-        q_settled = signals.probability(devices, SETTLED, times) if self.tables.has_settled else np.zeros(devices.size)
+        needed = sorted(set(self.required) | {_CHARGING})
+        chains = ([SETTLED] if self.tables.has_settled else []) + [1 + s for s in needed]
+        q = signals.probabilities(devices, chains, times)  # one pass over every chain that matters
+        own = {s: q[chains.index(1 + s)] for s in needed}
+        q_settled = q[0] if self.tables.has_settled else np.zeros(devices.size)
         ok_on = battery.ok_probability(devices, times, True)
         ok_off = battery.ok_probability(devices, times, False)
         total = np.zeros(devices.size)

@@ -148,6 +148,7 @@ class SignalTables:
     rate: np.ndarray  # [G, C, K] lambda = 1 / ((1 - p) d), 1/s
     prefix_a: np.ndarray  # [G, C, K + 1] on-probability at grid point k starting "off" at point 0
     prefix_log: np.ndarray  # [G, C, K + 1] cumulative lambda * h up to grid point k
+    leave_rate: np.ndarray  # [2, G, C, K] rate of leaving "off" (0: the on-rate) and "on" (1: 1/d), 1/s
     cum_hazard: np.ndarray  # [2, G, C, K + 1] cumulative leaving rate * h from "off" (0) and "on" (1)
     covers: np.ndarray  # [G, S] bool
     has_settled: bool
@@ -202,10 +203,8 @@ class SignalTables:
 
     def hazard_rate(self, group: np.ndarray, chain: np.ndarray | int, t: np.ndarray, on: np.ndarray) -> np.ndarray:
         """Rate (1/s) at which a chain in state ``on`` at ``t`` leaves it."""
-        k = self.step_of(t)
-        i = self._line(group, chain) * self.steps + k
-        rate, p = self.rate.reshape(-1)[i], self.p.reshape(-1)[i]
-        return np.where(on, rate * (1.0 - p), rate * p)
+        line = self._line(group, chain) + np.asarray(on, dtype=np.int64) * (self.p.shape[0] * self.p.shape[1])
+        return self.leave_rate.reshape(-1)[line * self.steps + self.step_of(t)]
 
     def next_flip(
         self, group: np.ndarray, chain: np.ndarray, t: np.ndarray, on: np.ndarray, e: np.ndarray
@@ -214,30 +213,20 @@ class SignalTables:
         the first t' with the integral of its leaving rate from t to t' equal to ``e`` (unit
         exponential draws), the rate piecewise constant per step."""
         steps = self.steps
-        line = self._line(group, chain) + np.where(on, self.p.shape[0] * self.p.shape[1], 0)
-        cum = self.cum_hazard.reshape(-1)  # lines of K + 1 points: [off lines..., on lines...]
+        # Lines of the leaving-rate and cumulative tables: [from off: G x C, from on: G x C].
+        line = group.astype(np.int64) * self.p.shape[1] + chain + on * (self.p.shape[0] * self.p.shape[1])
+        cum = self.cum_hazard.reshape(-1)
+        leave = self.leave_rate.reshape(-1)
         k0 = self.step_of(t)
-        rate = self.hazard_rate(group, chain, t, on)
-        start = line * (steps + 1)
-        at_t = cum[start + k0] + rate * np.maximum(t - (self.origin_s + k0 * self.step_s), 0.0)
-        target = at_t + e
-        end = cum[start + steps]
-        inside = target < end
-        result = np.full(t.shape, np.inf)
-        if inside.any():
-            li = line[inside]
-            # One binary search over every line at once (see `search_key`).
-            j = np.searchsorted(self.search_key, target[inside] + li * self.line_gap, side="right") - 1
-            k = np.clip(j - li * (steps + 1), 0, steps - 1)
-            base = cum[li * (steps + 1) + k]
-            i = (li % (self.p.shape[0] * self.p.shape[1])) * steps + k
-            r, p = self.rate.reshape(-1)[i], self.p.reshape(-1)[i]
-            leave = np.where(on[inside], r * (1.0 - p), r * p)
-            with np.errstate(divide="ignore", invalid="ignore"):
-                step_in = np.where(leave > 0, (target[inside] - base) / leave, 0.0)
-            when = self.origin_s + k * self.step_s + np.clip(step_in, 0.0, self.step_s)
-            result[inside] = np.maximum(when, t[inside])
-        return result
+        row = line * (steps + 1)
+        target = cum[row + k0] + leave[line * steps + k0] * (t - (self.origin_s + k0 * self.step_s)) + e
+        # One binary search over every line at once (see `search_key`).
+        k = np.searchsorted(self.search_key, target + line * self.line_gap, side="right") - 1 - row
+        np.clip(k, 0, steps - 1, out=k)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            step_in = (target - cum[row + k]) / leave[line * steps + k]
+        when = self.origin_s + k * self.step_s + np.clip(step_in, 0.0, self.step_s)
+        return np.where(target < cum[row + steps], np.maximum(when, t), np.inf)
 
     def survival(self, group: np.ndarray, chain: np.ndarray | int, t0: np.ndarray, t1: np.ndarray,
                  on: np.ndarray) -> np.ndarray:
@@ -314,6 +303,6 @@ def build_signal_tables(
     search_key = cum_hazard.reshape(-1) + np.repeat(np.arange(lines), steps + 1) * (top + 1.0)
     return SignalTables(
         origin_s=origin_s, step_s=STEP_S, p=p, d=d, rate=rate, prefix_a=prefix_a, prefix_log=prefix_log,
-        cum_hazard=cum_hazard, covers=covers, has_settled=bool(covers.any()), search_key=search_key,
+        leave_rate=leave, cum_hazard=cum_hazard, covers=covers, has_settled=bool(covers.any()), search_key=search_key,
         line_gap=top + 1.0,
     )

@@ -1,4 +1,4 @@
-"""Smoke version of benchmarks/scale.py: the same code path at a small size, no timing asserted."""
+"""Smoke versions of the benchmarks (scale.py, fleet_model.py): their code paths at a small size, untimed."""
 
 import importlib.util
 import json
@@ -30,3 +30,13 @@ def test_the_command_runs_its_quick_table(tmp_path):
     assert "slope of log(wall) on log(devices)" in done.stdout
     report = json.loads((ROOT / "benchmarks" / "out" / "scale-quick.json").read_text())
     assert {r["devices"] for r in report["rows"]} == {2000, 4000}
+
+
+def test_the_fleet_model_benchmark_times_a_whole_run_of_a_checkout(tmp_path):
+    # Smoke version of benchmarks/fleet_model.py: one whole `fleetsim run` of this checkout.
+    spec = importlib.util.spec_from_file_location("fleet_model", ROOT / "benchmarks" / "fleet_model.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    row = module.run_command(ROOT, 2000, 0.25, tmp_path / "run")
+    assert row["wall_s"] > 0 and row["peak_mb"] > 50 and row["attempted"] >= row["committed"] >= 0
+    assert (tmp_path / "run" / "summary.json").is_file()
