@@ -6,8 +6,8 @@ standard-normal score Z; the level is F^-1(Phi(Z)), F the Beta law of the chargi
 then (a Gaussian copula). Between looks the score is an Ornstein-Uhlenbeck process with time
 constant ``battery_level.correlation_time`` (tau): given Z at t0, the score at t is
 w Z + sqrt(1 - w^2) N(0, 1) with w = exp(-(t - t0) / tau). A device with no history draws
-Z ~ N(0, 1). So the level at every look has exactly the documented law, and two looks close
-together see nearly the same level.
+Z ~ N(0, 1). So a device left alone shows the documented law at every look, and two looks
+close together see nearly the same level (tasks feed their levels back, below).
 
 During a task the level moves physically (:mod:`fleetsim.client`); at the participation's
 end the level reached is recorded as the score that gives it under the law of the charging

@@ -127,7 +127,8 @@ def chain_parameters(
         for name in spec.settled.turns_on:
             row = 1 + SIGNALS.index(name)
             # The settled state holds the signal on: its own chain fills the rest.
-            p[row] = np.clip(1.0 - (1.0 - p[row]) / (1.0 - p[SETTLED]), 0.0, _P_MAX)
+            derived = np.clip(1.0 - (1.0 - p[row]) / (1.0 - p[SETTLED]), 0.0, _P_MAX)
+            p[row] = np.where(p[SETTLED] > 0.0, derived, p[row])  # never settled: the file's value as it is
     return p, d
 
 
