@@ -1,30 +1,49 @@
 """A small, literal reference simulator of fleetsim's semantics: the oracle for the engine.
 
-It is written plainly from the semantics in docs/architecture.md and the docstrings of the engine's
-modules, and shares none of the engine's signal, runtime, server or client code (it reuses
-only :mod:`fleetsim.config` for parsing and :func:`fleetsim.fleet.sample_fleet` for the
-devices' static traits, so that engine and oracle see the same fleet for a seed).
+It is written plainly from the model in docs/architecture.md, docs/fleet-file.md and the
+engine's docstrings, and shares none of the engine's signal, runtime, server or client code
+(it reuses only :mod:`fleetsim.config` for parsing and for the merged (device type, region)
+specs, and :func:`fleetsim.fleet.sample_fleet` for the devices' static traits and their
+(type, region) pairs drawn from the joint mix, so that engine and oracle see the same fleet
+for a seed).
 
-Everything is simulated the slow, obvious way, with one simpy process per device:
+Everything is simulated the slow, obvious way, with one simpy process per chain and device:
 
-- each device's three signals are real two-state timelines: on -> off at rate 1/d,
-  off -> on at rate p / ((1 - p) d), p read from the hourly table at the device's local hour
-  (zoneinfo). Rates are stepped on a 15-minute grid aligned to UTC quarter hours; within a
-  step the rate is constant, so drawing an exponential and redrawing it at the step's end
+- each device carries four independent two-state chains, each a real timeline: the settled
+  chain (never on when the spec has no ``settled``) and the own chain of each of idle,
+  charging and unmetered. A chain with on-probability p and mean on-duration d in a step
+  leaves "on" at rate 1/d and "off" at rate p / ((1 - p) d). p and d are read for the
+  step's LOCAL hour and LOCAL weekday or weekend day (zoneinfo; the region's
+  ``weekend_days``; the ``weekend`` values where given, else the weekday ones) from the
+  device's merged (type, region) spec: the settled chain from ``settled``; the own chain of
+  a signal s that the settled state holds on (``turns_on``) has
+  p_own = 1 - (1 - p_s) / (1 - p_settled) (0 where p_s = p_settled) and d = the signal's
+  mean on-duration in that hour; any other signal's own chain has the signal's p_s and d.
+  Every p is clipped to [0, 1 - 1e-6]. Signal s is on when its own chain is on, or the
+  settled chain is on and covers s. Rates are stepped on a 15-minute grid aligned to UTC
+  quarter hours (the local hour and date are those of each step's start); within a step
+  both rates are constant, so drawing an exponential and redrawing it at the step's end
   when it overshoots is exact (the exponential is memoryless);
 - a device ticks at ``phase + k * checkin_every``; at a tick during a round's selection it
   checks in if it is eligible (memory fits, not working, not resting, every required signal
-  on, and a battery level drawn from its type's Beta(mean, sd) for its charging state at
-  or above the minimum); the round accepts check-ins first come, first served. An accepted
-  device is working, and a device that took part in a round never checks in to it again
-  (even with no rest), so a device is in a round at most once and checks in at its first
-  eligible tick: the engine's "one candidate per device and collection window" is this
-  rule for arrival-order selection;
+  on, and a battery level at or above the minimum); the round accepts check-ins first come,
+  first served. An accepted device is working, and a device that took part in a round never
+  checks in to it again (even with no rest), so a device is in a round at most once and
+  checks in at its first eligible tick: the engine's "one candidate per device and
+  collection window" is this rule for arrival-order selection;
+- the battery level seen at a look (a tick that reaches the battery check) is
+  F_c^{-1}(Phi(Z)) with F_c the Beta law (by mean and sd) of the device's charging state c
+  in its merged spec and Z a standard-normal score per device: Z ~ N(0, 1) at the first
+  look, then Z' = w Z + sqrt(1 - w^2) N(0, 1) with w = exp(-(t - t0) / correlation_time)
+  since the last record (Z, t0); every look records (Z', t). At the end of a participation
+  the level L and charging state c there are recorded as Z = Phi^{-1}(F_c(L));
 - an accepted device downloads, trains and uploads with real simpy timeouts, interrupted by
-  one of its required signals turning off, a crash (exponential hazard), the OS execution
-  limit (measured from acceptance), the battery falling below the minimum (linear drain per
-  phase, less the charger whenever the charging timeline is on), or the round closing while
-  it downloads or trains (it is stopped; an upload in flight finishes and is late);
+  one of its required signals turning off (several at once, as when the settled chain
+  ends: the first of idle, charging, unmetered names the cause), a crash (exponential
+  hazard), the OS execution limit (measured from acceptance), the battery falling below the
+  minimum (linear drain per phase, less the charger whenever the charging signal is on,
+  capped at 100 %), or the round closing while it downloads or trains (it is stopped; an
+  upload in flight finishes and is late);
 - a server process runs the round protocol: accept up to ceil(target * over_selection)
   until the selection timeout (fewer than min_reports accepted: selection-timeout), then wait for
   target_reports reports or the report deadline counted from the end of selection, commit
@@ -35,7 +54,7 @@ Everything is simulated the slow, obvious way, with one simpy process per device
 
 Disruptions and selection policies other than first-come are not modelled.
 
-It is slow (pure Python, an event per signal change and per check-in tick): use it on a few
+It is slow (pure Python, an event per chain flip and per check-in tick): use it on a few
 thousand devices over a day or less. :func:`simulate_oracle` returns DataFrames whose rows
 mean what the engine's ``result.rounds`` and ``result.participations`` rows mean, with
 string labels instead of integer codes.
@@ -51,16 +70,23 @@ from zoneinfo import ZoneInfo
 
 import pandas as pd
 import simpy
+from scipy import special
 
 from fleetsim.config import Config
 from fleetsim.fleet import Fleet, sample_fleet
 
-__all__ = ["OracleResult", "simulate_oracle", "SIGNAL_NAMES", "STEP_S"]
+__all__ = ["OracleResult", "simulate_oracle", "SIGNAL_NAMES", "CHAIN_NAMES", "STEP_S", "chain_laws"]
 
 SIGNAL_NAMES = ("idle", "charging", "unmetered")
+CHAIN_NAMES = ("settled", "idle", "charging", "unmetered")  # chain 0, then each signal's own chain
 STEP_S = 900.0  # 15 minutes; every zone offset in use is a multiple of it (IANA tz database)
 _CHARGING = 1
 _INF = math.inf
+_P_MAX = 1.0 - 1e-6  # every on-probability is clipped to [0, 1 - 1e-6]
+_DAY_NAMES = ("monday", "tuesday", "wednesday", "thursday", "friday", "saturday", "sunday")  # date.weekday() order
+# A level of exactly 0 % or 100 % has the Beta CDF 0 or 1, whose normal score is infinite; the
+# score is kept finite (|Z| below about 7) so that later looks still mix in fresh noise.
+_U_CLIP = 1e-12
 
 
 @dataclass
@@ -79,25 +105,86 @@ def _beta_shape(mean_pct: float, sd_pct: float) -> tuple[float, float]:
     return m * total, (1.0 - m) * total
 
 
-class _Grid:
-    """The 15-minute UTC grid and each region's local hour on it."""
+def _by_hour(value) -> list[float]:
+    """24 values by local hour from a list of 24, or from one value for every hour."""
+    if isinstance(value, (int, float)):
+        return [float(value)] * 24
+    values = [float(v) for v in value]
+    assert len(values) == 24, values
+    return values
 
-    def __init__(self, start: datetime, first_s: float, last_s: float, zones: list[str]):
+
+def _pattern_law(pattern) -> tuple[list[list[float]], list[list[float]]]:
+    """A signal's or the settled state's (p, d) as [weekday, weekend][local hour]; d in s.
+
+    A ``weekend`` key missing (or the whole ``weekend``): the weekday value.
+    """
+    p_week, d_week = _by_hour(pattern.hourly), _by_hour(pattern.mean_on)
+    weekend = pattern.weekend
+    p_end = p_week if weekend is None or weekend.hourly is None else _by_hour(weekend.hourly)
+    d_end = d_week if weekend is None or weekend.mean_on is None else _by_hour(weekend.mean_on)
+    return [p_week, p_end], [d_week, d_end]
+
+
+def chain_laws(spec) -> tuple[list[list[list[float]]], list[list[list[float]]]]:
+    """On-probability and mean on-duration (s) of each chain of a merged (type, region) spec.
+
+    Both indexed [chain (CHAIN_NAMES)][0 weekday, 1 weekend][local hour]. The own chain of a
+    signal s held on by the settled state has p_own = 1 - (1 - p_s) / (1 - p_settled) (0
+    where p_s = p_settled), so that, the chains being independent,
+    P(s off) = (1 - p_own)(1 - p_settled) = 1 - p_s. No settled state: chain 0 is never on.
+    Every p is clipped to [0, 1 - 1e-6].
+    """
+    signals = {name: _pattern_law(spec.signals[name]) for name in SIGNAL_NAMES}
+    settled = spec.settled
+    if settled is None:
+        p_set, d_set = [[0.0] * 24, [0.0] * 24], [[3600.0] * 24, [3600.0] * 24]
+        covered: set[str] = set()
+    else:
+        p_set, d_set = _pattern_law(settled)
+        covered = set(settled.turns_on)
+    p = [[[0.0] * 24 for _ in range(2)] for _ in CHAIN_NAMES]
+    d = [[[0.0] * 24 for _ in range(2)] for _ in CHAIN_NAMES]
+    for w in range(2):
+        for h in range(24):
+            p[0][w][h], d[0][w][h] = p_set[w][h], d_set[w][h]
+            for c, name in enumerate(SIGNAL_NAMES, start=1):
+                p_s, d_s = signals[name][0][w][h], signals[name][1][w][h]
+                if name in covered:
+                    ps = p_set[w][h]
+                    p_s = 0.0 if p_s == ps else 1.0 - (1.0 - p_s) / (1.0 - ps)
+                p[c][w][h], d[c][w][h] = p_s, d_s
+            for c in range(len(CHAIN_NAMES)):
+                p[c][w][h] = min(max(p[c][w][h], 0.0), _P_MAX)
+    return p, d
+
+
+class _Grid:
+    """The 15-minute UTC grid and, per region, the local hour and weekend flag of each step.
+
+    Step k covers [origin_s + k STEP_S, origin_s + (k + 1) STEP_S); its local hour and local
+    date are those of its start in the region's zone (zoneinfo), and it is a weekend step when
+    that date's day name is one of the region's weekend days.
+    """
+
+    def __init__(self, start: datetime, first_s: float, last_s: float, zones: list[str],
+                 weekend_days: list[tuple[str, ...]]):
         self.epoch0 = start.astimezone(timezone.utc).timestamp()
         # Align grid point 0 to a UTC quarter hour at or before the first simulated time.
         q0 = math.floor((self.epoch0 + first_s) / STEP_S) * STEP_S
         self.origin_s = q0 - self.epoch0
         self.steps = int(math.ceil((last_s - self.origin_s) / STEP_S)) + 1
         self.hours: list[list[int]] = []
-        for zone in zones:
+        self.weekend: list[list[int]] = []
+        for zone, days in zip(zones, weekend_days, strict=True):
             tz = ZoneInfo(zone)
-            hours = []
+            hours, weekend = [], []
             for k in range(self.steps):
-                mid = q0 + (k + 0.5) * STEP_S
-                offset = datetime.fromtimestamp(mid, timezone.utc).astimezone(tz).utcoffset()
-                local = mid + offset.total_seconds()
-                hours.append(int(local // 3600) % 24)
+                local = datetime.fromtimestamp(q0 + k * STEP_S, timezone.utc).astimezone(tz)
+                hours.append(local.hour)
+                weekend.append(1 if _DAY_NAMES[local.weekday()] in days else 0)
             self.hours.append(hours)
+            self.weekend.append(weekend)
 
     def step(self, t: float) -> int:
         return int((t - self.origin_s) // STEP_S)
@@ -143,12 +230,15 @@ class _Device:
     index: int
     type: int
     region: int
-    on: list[bool]
+    on: list[bool]  # the signals idle, charging, unmetered
+    chain: list[bool]  # the chains settled, own idle, own charging, own unmetered
     capable: bool
     working: bool = False
     free_at: float = -_INF
     change: simpy.Event | None = None  # succeeded on any signal change while working
     parts: list[_Part] = field(default_factory=list)
+    score: float | None = None  # the battery's normal score Z at its last record (None: no look yet)
+    score_s: float = 0.0  # the time of that record
 
 
 class _Oracle:
@@ -158,14 +248,20 @@ class _Oracle:
         # An explicit random stream of its own (never the engine's streams).
         self.rng = random.Random(f"oracle-{seed}")
         self.horizon_s = float(config.horizon.duration)
-        types = config.fleet.device_types
         regions = config.fleet.regions
-        self.type_specs = [types[name] for name in self.fleet.type_names]
-        mean_on = [[t.signals[s].mean_on for s in SIGNAL_NAMES] for t in self.type_specs]
-        self.mean_on = mean_on
-        longest = max(max(row) for row in mean_on)
-        # Signals settle before anything looks at them, so each chain starts near its own law:
-        # five mean on-durations cover the relaxation exp(-t (a + b)), a + b >= 1/d (Ross).
+        fleet = self.fleet
+        n_types, n_regions = len(fleet.type_names), len(fleet.region_names)
+        # Every (type, region) pair's merged spec: the type's values < the region's overrides <
+        # the type's by_region entry for the region (fleetsim.config merges and validates).
+        self.group_specs = {
+            (ti, ri): config.fleet.group_spec(fleet.type_names[ti], fleet.region_names[ri])
+            for ti in range(n_types) for ri in range(n_regions)
+        }
+        laws = {key: chain_laws(spec) for key, spec in self.group_specs.items()}
+        longest = max(d for _, ds in laws.values() for chain in ds for week in chain for d in week)
+        # Chains settle before anything looks at them, so each starts near its own law: five
+        # of the longest mean on-durations cover the relaxation exp(-integral of (a + b)),
+        # with a + b = 1 / ((1 - p) d) >= 1/d in every step (Ross, section 6.4, from memory).
         self.settle_s = max(6 * 3600.0, 5.0 * longest)
         # The server's own warm-up (``horizon.warmup``; unset: the rest period, at most two
         # days, as the config documents): rounds run before the horizon so that rest periods
@@ -181,29 +277,39 @@ class _Oracle:
         self.env = simpy.Environment(initial_time=-self.warmup_s)
         rounds = config.rounds
         tail = rounds.selection_timeout + rounds.report_deadline + 2 * 86400.0
+        region_specs = [regions[name] for name in fleet.region_names]
         self.grid = _Grid(config.horizon.start, -self.warmup_s, self.horizon_s + tail,
-                          [regions[name].timezone for name in self.fleet.region_names])
-        # off -> on rate per (type, region, signal) and grid step.
-        self.on_rate: dict[tuple[int, int, int], list[float]] = {}
+                          [r.timezone for r in region_specs],
+                          [tuple(r.weekend_days) for r in region_specs])
+        # Per (type, region, chain) and grid step: the on-probability and the rates of leaving
+        # "off" (p / ((1 - p) d)) and "on" (1 / d), for the step's local hour and day kind.
         self.p_at: dict[tuple[int, int, int], list[float]] = {}
-        for ti, spec in enumerate(self.type_specs):
-            for ri in range(len(self.fleet.region_names)):
-                for si, name in enumerate(SIGNAL_NAMES):
-                    pattern = spec.signals[name]
-                    ps = [pattern.hourly[h] for h in self.grid.hours[ri]]
-                    rates = []
-                    for p in ps:
-                        rates.append(_INF if p >= 1.0 else p / ((1.0 - p) * pattern.mean_on))
-                    self.on_rate[(ti, ri, si)] = rates
-                    self.p_at[(ti, ri, si)] = ps
-        self.beta = [
-            (_beta_shape(t.battery_level.unplugged.mean, t.battery_level.unplugged.sd),
-             _beta_shape(t.battery_level.charging.mean, t.battery_level.charging.sd))
-            for t in self.type_specs
-        ]
+        self.on_rate: dict[tuple[int, int, int], list[float]] = {}
+        self.off_rate: dict[tuple[int, int, int], list[float]] = {}
+        for (ti, ri), (p, d) in laws.items():
+            hours, weekend = self.grid.hours[ri], self.grid.weekend[ri]
+            for c in range(len(CHAIN_NAMES)):
+                ps = [p[c][w][h] for w, h in zip(weekend, hours, strict=True)]
+                ds = [d[c][w][h] for w, h in zip(weekend, hours, strict=True)]
+                self.p_at[(ti, ri, c)] = ps
+                self.on_rate[(ti, ri, c)] = [q / ((1.0 - q) * dur) for q, dur in zip(ps, ds, strict=True)]
+                self.off_rate[(ti, ri, c)] = [1.0 / dur for dur in ds]
+        # Which signals the settled chain holds on, per group (none without a settled state).
+        self.covers = {}
+        for key, spec in self.group_specs.items():
+            settled = spec.settled
+            turns_on = set(settled.turns_on) if settled is not None else set()
+            self.covers[key] = [name in turns_on for name in SIGNAL_NAMES]
+        # Battery: Beta shapes (unplugged, charging) and the score's correlation time, per group.
+        self.beta, self.correlation_s = {}, {}
+        for key, spec in self.group_specs.items():
+            levels = spec.battery_level
+            self.beta[key] = (_beta_shape(levels.unplugged.mean, levels.unplugged.sd),
+                              _beta_shape(levels.charging.mean, levels.charging.sd))
+            self.correlation_s[key] = float(levels.correlation_time)
         work = config.workload
-        self.required = [SIGNAL_NAMES.index(s) for s in work.requires]
-        fleet = self.fleet
+        # In signal order, so that signals ending at once name the first of idle, charging, unmetered.
+        self.required = sorted(SIGNAL_NAMES.index(s) for s in work.requires)
         self.devices: list[_Device] = []
         for i in range(fleet.size):
             self.devices.append(_Device(
@@ -211,6 +317,7 @@ class _Oracle:
                 type=int(fleet.device_type[i]),
                 region=int(fleet.region[i]),
                 on=[False, False, False],
+                chain=[False, False, False, False],
                 capable=bool(fleet.memory_bytes[i] >= work.memory_needed),
             ))
         self.round: _Round | None = None
@@ -219,26 +326,24 @@ class _Oracle:
 
     # ------------------------------------------------------------------ signals
 
-    def _signal(self, dev: _Device, s: int):
+    def _chain(self, dev: _Device, c: int):
         env, rng, grid = self.env, self.rng, self.grid
-        off_rate = 1.0 / self.mean_on[dev.type][s]
-        on_rates = self.on_rate[(dev.type, dev.region, s)]
+        key = (dev.type, dev.region, c)
+        rates = (self.on_rate[key], self.off_rate[key])  # indexed by the state: leave off, leave on
         end_of_grid = grid.origin_s + grid.steps * STEP_S
         # The chain starts at the warm-up origin from the step's on-probability.
         k0 = grid.step(env.now)
-        dev.on[s] = rng.random() < self.p_at[(dev.type, dev.region, s)][k0]
+        dev.chain[c] = rng.random() < self.p_at[key][k0]
+        self._update_signals(dev)
         while True:
             t = env.now
-            if dev.on[s]:
-                # The on -> off rate 1/d is the same in every step, so redrawing at each
-                # boundary would give the same law: one exponential draw suffices.
-                t += rng.expovariate(off_rate)
-            while not dev.on[s]:
+            state = dev.chain[c]
+            while True:
                 k = grid.step(t)
                 if k >= grid.steps:
                     return  # past the grid: the run is over long before this
-                rate = on_rates[k]
-                wait = 0.0 if rate == _INF else (rng.expovariate(rate) if rate > 0 else _INF)
+                rate = rates[state][k]
+                wait = rng.expovariate(rate) if rate > 0 else _INF
                 end = grid.step_end(k)
                 if t + wait < end:
                     t += wait
@@ -247,9 +352,41 @@ class _Oracle:
                 if t >= end_of_grid:
                     return
             yield env.timeout(t - env.now)
-            dev.on[s] = not dev.on[s]
+            dev.chain[c] = not state
+            self._update_signals(dev)
+
+    def _update_signals(self, dev: _Device) -> None:
+        """Signal s is on when its own chain is on, or the settled chain is on and covers s."""
+        covers = self.covers[(dev.type, dev.region)]
+        settled = dev.chain[0]
+        on = [dev.chain[1 + s] or (settled and covers[s]) for s in range(len(SIGNAL_NAMES))]
+        if on != dev.on:
+            dev.on = on
             if dev.change is not None and not dev.change.triggered:
                 dev.change.succeed()
+
+    # ------------------------------------------------------------------ battery
+
+    def _look(self, dev: _Device) -> float:
+        """The battery level (%) seen now: a fresh or correlated normal score through the Beta law."""
+        now, key = self.env.now, (dev.type, dev.region)
+        fresh = self.rng.gauss(0.0, 1.0)
+        if dev.score is None:
+            score = fresh
+        else:
+            tau = self.correlation_s[key]
+            w = math.exp(-(now - dev.score_s) / tau) if tau > 0 else 0.0
+            score = w * dev.score + math.sqrt(1.0 - w * w) * fresh
+        dev.score, dev.score_s = score, now
+        a, b = self.beta[key][1 if dev.on[_CHARGING] else 0]
+        return 100.0 * float(special.betaincinv(a, b, float(special.ndtr(score))))
+
+    def _record(self, dev: _Device, level_pct: float) -> None:
+        """Record the level at a participation's end as the score Phi^{-1}(F_c(L)), c the charging state now."""
+        a, b = self.beta[(dev.type, dev.region)][1 if dev.on[_CHARGING] else 0]
+        u = float(special.betainc(a, b, min(max(level_pct / 100.0, 0.0), 1.0)))
+        dev.score = float(special.ndtri(min(max(u, _U_CLIP), 1.0 - _U_CLIP)))
+        dev.score_s = self.env.now
 
     # ------------------------------------------------------------------ check-ins
 
@@ -274,9 +411,7 @@ class _Oracle:
             return  # a round takes a device once (common practice), even with no rest
         if not all(dev.on[s] for s in self.required):
             return
-        charging = dev.on[_CHARGING]
-        a, b = self.beta[dev.type][1 if charging else 0]
-        battery = 100.0 * self.rng.betavariate(a, b)
+        battery = self._look(dev)
         if battery < self.config.workload.min_battery:
             return
         rnd.checkins += 1
@@ -347,6 +482,7 @@ class _Oracle:
                 break
         part.download_done, part.train_done, part.upload_done = done["download"], done["train"], done["upload"]
         part.ended_s = env.now
+        self._record(dev, level)
         if ended_by == "stopped":
             part.outcome, part.phase = "stopped", "none"
         elif ended_by:
@@ -390,8 +526,10 @@ class _Oracle:
     def run(self) -> OracleResult:
         env = self.env
         for dev in self.devices:
-            for s in range(len(SIGNAL_NAMES)):
-                env.process(self._signal(dev, s))
+            for c in range(len(CHAIN_NAMES)):
+                if c == 0 and not any(self.covers[(dev.type, dev.region)]):
+                    continue  # no settled state: chain 0 is never on
+                env.process(self._chain(dev, c))
             env.process(self._ticks(dev))
         server = env.process(self._server())
         env.run(until=server)
