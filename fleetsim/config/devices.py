@@ -30,6 +30,7 @@ from .fields import (
     Trait,
     _at,
     _at_least_one_step,
+    _listed_once,
     _Strict,
 )
 
@@ -106,9 +107,7 @@ class SettledPattern(SignalPattern):
     @field_validator("turns_on")
     @classmethod
     def _unique(cls, value: list[str]) -> list[str]:
-        if len(set(value)) != len(value):
-            raise ValueError("a signal is listed twice")
-        return value
+        return _listed_once(value, "signal")
 
 
 class BatteryLevel(_Strict):

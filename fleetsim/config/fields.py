@@ -231,6 +231,13 @@ class BitRateTrait(Trait):
     _read: ClassVar[Any] = staticmethod(parse_bit_rate)
 
 
+def _listed_once(value: list[str], what: str) -> list[str]:
+    """``value`` unless an item appears twice (then ValueError: "a <what> is listed twice")."""
+    if len(set(value)) != len(value):
+        raise ValueError(f"a {what} is listed twice")
+    return value
+
+
 def _at(key: str, message: str) -> str:
     """A validator message placed at ``key`` (relative to the model): :func:`_describe` moves
     the key into the line's key path."""

@@ -23,6 +23,7 @@ from .fields import (
     Count,
     Probability,
     _at,
+    _listed_once,
     _show,
     _Strict,
 )
@@ -46,9 +47,7 @@ class Region(_Strict):
     @field_validator("weekend_days")
     @classmethod
     def _unique_days(cls, value: list[str]) -> list[str]:
-        if len(set(value)) != len(value):
-            raise ValueError("a day is listed twice")
-        return value
+        return _listed_once(value, "day")
 
     @property
     def weekend_isodays(self) -> frozenset[int]:

@@ -27,6 +27,7 @@ from .fields import (
     SignalName,
     Size,
     _at,
+    _listed_once,
     _show,
     _Strict,
 )
@@ -52,9 +53,7 @@ class Workload(_Strict):
     @field_validator("requires")
     @classmethod
     def _unique(cls, value: list[str]) -> list[str]:
-        if len(set(value)) != len(value):
-            raise ValueError("a signal is listed twice")
-        return value
+        return _listed_once(value, "signal")
 
     @field_validator("execution_limit", mode="wrap")
     @classmethod
