@@ -25,7 +25,7 @@ from scipy import special
 
 from .config import Config
 
-__all__ = ["BatteryState", "beta_params", "Z_GRID"]
+__all__ = ["BatteryState", "beta_params", "battery_path", "battery_crossing", "Z_GRID"]
 
 Z_GRID = np.linspace(-8.5, 8.5, 4097)
 """Scores at which each level law's quantile function is tabulated (linear in between)."""
@@ -107,3 +107,53 @@ class BatteryState:
         with np.errstate(divide="ignore", invalid="ignore"):
             p = special.ndtr((mean - floor) / spread)
         return np.where(spread > 0, p, (mean >= floor).astype(float))
+
+
+def battery_path(
+    ends: np.ndarray, powers: np.ndarray, start_pct: np.ndarray, charge_changes: np.ndarray,
+    charging0: np.ndarray, charge_w: np.ndarray, battery_wh: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The battery level as a piecewise-linear path from the task's start to its end.
+
+    ``ends`` [K, n] are the relative times each of the task's K phases ends (in time order)
+    and ``powers`` [K, n] each phase's draw, W. ``charge_changes`` [n, M] are the relative
+    times the charging signal changed (inf-padded; negative: while the device waited to
+    start), ``charging0`` its state at check-in. Returns the points [n, P], the level at each
+    (%) and the slope (%/s) from each to the next; the level is capped at 100% (a capped
+    stretch is flat)."""
+    t_end = ends[-1]
+    inside = np.where(np.isfinite(charge_changes), np.clip(charge_changes, 0.0, None), np.inf)
+    points = np.concatenate([np.zeros((t_end.size, 1)), ends.T, np.minimum(inside, t_end[:, None])], axis=1)
+    points.sort(axis=1)
+    scale = 100.0 / (3600.0 * battery_wh)  # percent per joule
+    levels = np.empty(points.shape)
+    slopes = np.zeros(points.shape)
+    level = start_pct.copy()
+    for j in range(points.shape[1]):
+        levels[:, j] = level
+        if j == points.shape[1] - 1:
+            break
+        a, b = points[:, j], points[:, j + 1]
+        mid = 0.5 * (a + b)
+        phase = np.minimum((ends <= mid[None, :]).sum(axis=0), ends.shape[0] - 1)
+        draw = powers[phase, np.arange(mid.size)]
+        changes = (charge_changes <= mid[:, None]).sum(axis=1)
+        charging = charging0 ^ (changes % 2 == 1)
+        slope = (np.where(charging, charge_w, 0.0) - draw) * scale
+        slope = np.where(level >= 100.0, np.minimum(slope, 0.0), slope)
+        slopes[:, j] = slope
+        level = np.minimum(level + slope * (b - a), 100.0)
+    return points, levels, slopes
+
+
+def battery_crossing(points: np.ndarray, levels: np.ndarray, slopes: np.ndarray, min_pct: float) -> np.ndarray:
+    """Relative time the level first falls below ``min_pct`` (inf if never)."""
+    crossing = np.full(points.shape[0], np.inf)
+    for j in range(points.shape[1] - 1):
+        a, b = points[:, j], points[:, j + 1]
+        level, slope = levels[:, j], slopes[:, j]
+        falls = np.isinf(crossing) & (b > a) & (slope < 0) & (level + slope * (b - a) < min_pct)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            when = a + (level - min_pct) / -slope
+        crossing = np.where(falls, np.maximum(when, a), crossing)
+    return crossing

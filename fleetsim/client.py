@@ -1,17 +1,23 @@
 """The on-device runtime for a whole cohort at once: download, train, upload, dropout.
 
-When a round accepts a cohort, every member's task is resolved together from its traits:
+When a round starts a cohort's tasks, every member's task is resolved together from its traits:
 
-- download, training and upload times (:func:`task_times`, the one place of the formula);
-- interruptions, each measured from acceptance: a required signal turning off (each
-  device's chains followed exactly from its check-in, :meth:`fleetsim.signals.SignalState.paths`:
+- the local work (:meth:`fleetsim.config.Workload.local_work`: epochs over at most ``max_examples`` examples, at most
+  ``max_steps`` batches) and the phases' times (:func:`task_times`, the one place of the
+  formula): download, (with secure aggregation, key advertisement and key sharing), training
+  (the local steps, then the update's encoding), upload;
+- interruptions, each measured from the task's start: a required signal turning off (each
+  device's chains followed exactly from its check-in, :meth:`fleetsim.chains.SignalState.paths`:
   the rates change with the local hour), a crash (exponential at the crash hazard), the OS
   execution limit, and the battery falling below the workload's minimum (the level seen at
   check-in, then piecewise-linear: the phase's power draw, less the charger whenever the
-  charging signal is on, so a device plugged in mid-task charges; capped at 100%).
+  charging signal is on, so a device plugged in mid-task charges; capped at 100%;
+  :func:`fleetsim.battery.battery_path`).
 
-The earliest interruption before the task's end is the dropout, with its cause and phase.
-Disruptions apply by the factor in force when the task starts, for its whole length.
+The earliest interruption before the task's end is the dropout, with its cause and phase;
+with secure aggregation the first interruption after it decides whether the device answers
+the unmasking. Disruptions apply by the factor in force when the task starts, for its whole
+length.
 """
 
 from __future__ import annotations
@@ -20,15 +26,20 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .battery import battery_crossing, battery_path
 from .chains import Paths, SignalState
 from .config import SIGNALS, Config, Disruption, Workload
-from .events import CAUSES
+from .config.protocol import SecureAggregation
+from .events import CAUSES, PHASES
 
 __all__ = ["Cohort", "resolve_cohort", "disruption_factor", "task_times"]
 
 _BATTERY = CAUSES.index("battery-low")
 _EXECUTION_LIMIT = CAUSES.index("execution-limit")
 _CRASH = CAUSES.index("crash")
+_UNMASKING = PHASES.index("unmasking")
+_PLAIN = ("download", "train", "upload")
+_SECURE = ("download", "key-advertisement", "key-sharing", "train", "upload")
 
 
 def task_times(
@@ -39,19 +50,22 @@ def task_times(
     sample_cost_s: np.ndarray,
     bandwidth: np.ndarray | float = 1.0,
     compute: np.ndarray | float = 1.0,
+    upload_bytes: float | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Download, training and upload time of each device's task, s.
 
     download = model bytes * 8 / (down Mbit/s * 10**6 * ``bandwidth``), upload likewise with
-    the update's bytes; training = ceil(samples / batch) * batch * epochs * per-sample cost s
-    * ``compute`` (the last batch of an epoch is padded to full size). ``bandwidth`` and
-    ``compute`` are disruption factors (1: none). A zero rate gives an infinite time.
+    ``upload_bytes`` (default: the encoded update's, :meth:`Workload.upload_bytes`);
+    training = (examples processed (:meth:`Workload.local_work`) * per-sample cost + the encoding
+    time) * ``compute``. ``bandwidth`` and ``compute`` are disruption factors (1: none). A
+    zero rate gives an infinite time.
     """
+    upload = work.upload_bytes if upload_bytes is None else upload_bytes
     with np.errstate(divide="ignore"):
         download_s = work.model_size * 8.0 / (down_mbps * 1e6 * bandwidth)
-        upload_s = work.upload_bytes * 8.0 / (up_mbps * 1e6 * bandwidth)
-    padded = np.ceil(samples / work.batch_size) * work.batch_size
-    train_s = padded * work.epochs * sample_cost_s * compute
+        upload_s = upload * 8.0 / (up_mbps * 1e6 * bandwidth)
+    processed, _ = work.local_work(samples)
+    train_s = (processed * sample_cost_s + work.encode_s) * compute
     return download_s, train_s, upload_s
 
 
@@ -82,35 +96,62 @@ def disruption_factor(
 
 @dataclass
 class Cohort:
-    """Resolved tasks of the devices one round accepted (times relative to acceptance, s)."""
+    """Resolved tasks of the devices one round started (times relative to the start, s).
+
+    The task runs its phases in time order (``phases``, codes into PHASES); with secure
+    aggregation a device whose report arrived on time then answers the unmasking, for
+    ``unmask_s``, from the round's close."""
 
     device: np.ndarray
-    accept_s: np.ndarray
-    download_s: np.ndarray
-    train_s: np.ndarray
-    upload_s: np.ndarray
+    accept_s: np.ndarray  # when each task started (absolute, s)
+    phases: tuple[int, ...]  # phase codes in time order
+    durations: np.ndarray  # [K, n] each phase's time
+    powers: np.ndarray  # [K, n] each phase's draw, W
+    bytes_down: np.ndarray  # [K] bytes each phase brings down
+    bytes_up: np.ndarray  # [K] bytes each phase sends up
+    examples: np.ndarray  # examples the whole local work processes
+    weight: np.ndarray  # FedAvg weight of the report
+    local_s: np.ndarray  # time of the local steps (the training phase less the encoding)
     drop_at: np.ndarray  # relative time of dropout, inf when the task would complete
     cause: np.ndarray  # int8 code into CAUSES
+    interrupt_at: np.ndarray  # first interruption at any time (inf: none before the paths end)
+    interrupt_cause: np.ndarray  # its cause
+    unmask_s: np.ndarray  # unmasking time (0 without secure aggregation)
+    unmask_bytes: float  # bytes the unmasking sends up
     battery_start_pct: np.ndarray
-    radio_w: np.ndarray
-    train_w: np.ndarray
-    model_bytes: float
-    update_bytes: float
     paths: Paths  # every chain's path from check-in (absolute times)
     battery_points: np.ndarray  # [n, P] relative times where the battery's slope may change
     battery_levels: np.ndarray  # [n, P] level (%) at each point
     battery_slopes: np.ndarray  # [n, P] slope (%/s) from each point to the next
 
+    def _phase(self, name: str) -> np.ndarray:
+        return self.durations[self.phases.index(PHASES.index(name))]
+
+    @property
+    def download_s(self) -> np.ndarray:
+        return self._phase("download")
+
+    @property
+    def train_s(self) -> np.ndarray:
+        return self._phase("train")
+
+    @property
+    def upload_s(self) -> np.ndarray:
+        return self._phase("upload")
+
+    @property
+    def ends(self) -> np.ndarray:
+        """[K, n] relative time each phase ends."""
+        return np.cumsum(self.durations, axis=0)
+
     @property
     def task_s(self) -> np.ndarray:
-        return self.download_s + self.train_s + self.upload_s
+        return self.durations.sum(axis=0)
 
     def phase_at(self, rel: np.ndarray) -> np.ndarray:
-        """Phase code at relative time ``rel`` (download 1, train 2, upload 3)."""
-        phase = np.full(rel.shape, 3, dtype=np.int8)
-        phase[rel < self.download_s + self.train_s] = 2
-        phase[rel < self.download_s] = 1
-        return phase
+        """Phase code at relative time ``rel`` (within the task; the last phase after it)."""
+        k = np.minimum((self.ends <= rel[None, :]).sum(axis=0), len(self.phases) - 1)
+        return np.asarray(self.phases, dtype=np.int8)[k]
 
     def battery_at(self, rel: np.ndarray) -> np.ndarray:
         """Battery level (%) at relative time ``rel`` (within the task)."""
@@ -120,18 +161,32 @@ class Cohort:
         level = self.battery_levels[rows, j] + self.battery_slopes[rows, j] * (rel - self.battery_points[rows, j])
         return np.clip(level, 0.0, 100.0)
 
-    def work_until(self, rel: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-        """Work done by relative time ``rel``: training s, bytes down, bytes up, energy Wh."""
-        d, tr, up = self.download_s, self.train_s, self.upload_s
-        down_done = np.clip(rel, 0.0, d)
-        train_done = np.clip(rel - d, 0.0, tr)
-        up_done = np.clip(rel - d - tr, 0.0, up)
+    def work_until(
+        self, rel: np.ndarray, unmask_from: np.ndarray | None = None,
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """Work done by relative time ``rel``: training s, bytes down, bytes up, energy Wh and
+        examples processed. ``unmask_from``: when each device began answering the unmasking
+        (inf: it did not); its time to ``rel`` adds radio energy and the unmasking's bytes."""
+        ends = self.ends
+        starts = ends - self.durations
+        done = np.clip(rel[None, :] - starts, 0.0, self.durations)  # [K, n]
         with np.errstate(invalid="ignore", divide="ignore"):
-            bytes_down = self.model_bytes * np.where(d > 0, down_done / d, 1.0)
-            bytes_up = self.update_bytes * np.where(up > 0, up_done / up, 1.0)
-        bytes_up = np.where(rel >= d + tr, bytes_up, 0.0)
-        energy_wh = (self.radio_w * (down_done + up_done) + self.train_w * train_done) / 3600.0
-        return train_done, bytes_down, bytes_up, energy_wh
+            share = np.where(self.durations > 0, done / self.durations, (rel[None, :] >= starts) * 1.0)
+        down = (share * self.bytes_down[:, None]).sum(axis=0)
+        up = (share * self.bytes_up[:, None]).sum(axis=0)
+        energy_wh = (self.powers * done).sum(axis=0) / 3600.0
+        train_done = done[self.phases.index(PHASES.index("train"))]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            steps_share = np.where(self.local_s > 0, np.minimum(train_done / self.local_s, 1.0), 1.0)
+        reached = rel >= starts[self.phases.index(PHASES.index("train"))]
+        examples = np.where(reached, self.examples * steps_share, 0.0)
+        if unmask_from is not None:
+            spent = np.clip(rel - unmask_from, 0.0, self.unmask_s)
+            spent = np.where(np.isfinite(unmask_from), spent, 0.0)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                up += self.unmask_bytes * np.where(self.unmask_s > 0, spent / self.unmask_s, np.isfinite(unmask_from))
+            energy_wh += self.powers[0] * spent / 3600.0  # radio power (the download's draw)
+        return train_done, down, up, energy_wh, examples
 
 
 def _signal_events(paths: Paths, signals: SignalState, devices: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -150,60 +205,10 @@ def _signal_events(paths: Paths, signals: SignalState, devices: np.ndarray) -> t
     return times, on
 
 
-def _battery_path(
-    cohort_times: tuple[np.ndarray, np.ndarray, np.ndarray], start_pct: np.ndarray, charge_changes: np.ndarray,
-    charging0: np.ndarray, train_w: np.ndarray, radio_w: np.ndarray, charge_w: np.ndarray, battery_wh: np.ndarray,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """The battery level as a piecewise-linear path from acceptance to the task's end.
-
-    ``charge_changes`` [n, M] are the relative times the charging signal changed (inf-padded;
-    negative: while the check-in was held), ``charging0`` its state at check-in. Returns the
-    points [n, P], the level at each (%) and the slope (%/s) from each to the next; the level
-    is capped at 100% (a capped stretch is flat)."""
-    d, tr, up = cohort_times
-    t_end = d + tr + up
-    inside = np.where(np.isfinite(charge_changes), np.clip(charge_changes, 0.0, None), np.inf)
-    points = np.concatenate([np.zeros((d.size, 1)), d[:, None], (d + tr)[:, None], t_end[:, None],
-                             np.minimum(inside, t_end[:, None])], axis=1)
-    points.sort(axis=1)
-    scale = 100.0 / (3600.0 * battery_wh)  # percent per joule
-    levels = np.empty(points.shape)
-    slopes = np.zeros(points.shape)
-    level = start_pct.copy()
-    for j in range(points.shape[1]):
-        levels[:, j] = level
-        if j == points.shape[1] - 1:
-            break
-        a, b = points[:, j], points[:, j + 1]
-        mid = 0.5 * (a + b)
-        in_train = (mid >= d) & (mid < d + tr)
-        draw = np.where(in_train, train_w, radio_w)
-        changes = (charge_changes <= mid[:, None]).sum(axis=1)
-        charging = charging0 ^ (changes % 2 == 1)
-        slope = (np.where(charging, charge_w, 0.0) - draw) * scale
-        slope = np.where(level >= 100.0, np.minimum(slope, 0.0), slope)
-        slopes[:, j] = slope
-        level = np.minimum(level + slope * (b - a), 100.0)
-    return points, levels, slopes
-
-
-def _battery_crossing(points: np.ndarray, levels: np.ndarray, slopes: np.ndarray, min_pct: float) -> np.ndarray:
-    """Relative time the level first falls below ``min_pct`` (inf if never)."""
-    crossing = np.full(points.shape[0], np.inf)
-    for j in range(points.shape[1] - 1):
-        a, b = points[:, j], points[:, j + 1]
-        level, slope = levels[:, j], slopes[:, j]
-        falls = np.isinf(crossing) & (b > a) & (slope < 0) & (level + slope * (b - a) < min_pct)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            when = a + (level - min_pct) / -slope
-        crossing = np.where(falls, np.maximum(when, a), crossing)
-    return crossing
-
-
 def _signal_losses(work: Workload, rel: np.ndarray, on: np.ndarray) -> list[np.ndarray]:
     """Per signal, the relative time it first turns off (inf: never, or not required), from the
     chain changes at relative times ``rel`` [n, M] and the signals' states after each [S, n, M].
-    A loss while the check-in was held counts at acceptance (0)."""
+    A loss while the device waited to start counts at its start (0)."""
     n = rel.shape[0]
     losses = [np.full(n, np.inf) for _ in SIGNALS]
     if not rel.size:  # no chain changed in the whole cohort
@@ -224,6 +229,48 @@ def _charging_changes(rel: np.ndarray, on: np.ndarray, charging0: np.ndarray) ->
     return changes[:, np.isfinite(changes).any(axis=0)]  # columns with a change somewhere
 
 
+def _phases(
+    config: Config, arrays: dict[str, np.ndarray], n: int, bandwidth: np.ndarray, compute: np.ndarray,
+) -> tuple[tuple[str, ...], np.ndarray, np.ndarray, np.ndarray, np.ndarray, tuple[np.ndarray, float]]:
+    """The task's phases in time order for a cohort of ``n`` started devices: names, times
+    [K, n], draws [K, n], bytes down and up [K], and the unmasking's times [n] and bytes up
+    (zero without secure aggregation)."""
+    work, secure = config.workload, config.rounds.secure_aggregation
+    accepted = max(n, 1)
+    upload = work.upload_bytes
+    if secure is not None:
+        bits = SecureAggregation.masked_bits(work.update_encoding.bits_per_weight, accepted)
+        upload = work.update_encoding.weights(work.model_size) * bits / 8.0
+    down_s, train_s, up_s = task_times(work, arrays["down_mbps"], arrays["up_mbps"], arrays["samples"],
+                                       arrays["sample_cost_s"], bandwidth, compute, upload)
+    times = {"download": down_s, "train": train_s, "upload": up_s}
+    moved = {"download": (work.model_size, 0.0), "train": (0.0, 0.0), "upload": (0.0, upload)}
+    names = _PLAIN if secure is None else _SECURE
+    unmask_s, unmask_bytes = np.zeros(n), 0.0
+    if secure is not None:
+        fixed = {"key-advertisement": secure.key_advertisement, "key-sharing": secure.key_sharing,
+                 "unmasking": secure.unmasking}
+        with np.errstate(divide="ignore"):
+            for name, (down_b, up_b) in secure.phase_bytes(accepted).items():
+                moved[name] = (down_b, up_b)
+                times[name] = (fixed[name] + down_b * 8.0 / (arrays["down_mbps"] * 1e6 * bandwidth)
+                               + up_b * 8.0 / (arrays["up_mbps"] * 1e6 * bandwidth))
+        unmask_s, unmask_bytes = times["unmasking"], moved["unmasking"][1]
+    radio, train_w = arrays["radio_power_w"], arrays["train_power_w"]
+    durations = np.stack([times[name] for name in names])
+    powers = np.stack([train_w if name == "train" else radio for name in names])
+    bytes_down = np.array([moved[name][0] for name in names])
+    bytes_up = np.array([moved[name][1] for name in names])
+    return names, durations, powers, bytes_down, bytes_up, (unmask_s, unmask_bytes)
+
+
+def _earliest(candidates: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """Index (into CAUSES, less one) and time of each device's earliest interruption."""
+    stacked = np.stack(candidates[1:], axis=0)
+    first = np.argmin(stacked, axis=0)
+    return first, stacked[first, np.arange(stacked.shape[1])]
+
+
 def resolve_cohort(
     config: Config,
     fleet_arrays: dict[str, np.ndarray],
@@ -236,68 +283,69 @@ def resolve_cohort(
     rng: np.random.Generator,
     type_names: tuple[str, ...],
     region_names: tuple[str, ...],
+    wait_s: float = 0.0,
 ) -> Cohort:
-    """Resolve every accepted device's task.
+    """Resolve every started device's task.
 
     ``fleet_arrays`` maps trait names to per-device arrays (already indexed by ``device``);
-    ``checkin_s`` is when each check-in came (the server may hold it until ``accept_s``: a
-    signal seen on at check-in may turn off while held, and the device then drops out at
-    once); ``charging`` and ``battery_pct`` are as seen at check-in; ``signals`` holds the
-    chains' last looks, from which each device's path is followed.
+    ``accept_s`` is when each task starts and ``checkin_s`` when each check-in came (a signal
+    seen on at check-in may turn off while the device waits to start, and it then drops out
+    at once); ``charging`` and ``battery_pct`` are as seen at check-in; ``signals`` holds the
+    chains' last looks, from which each device's path is followed, up to ``wait_s`` past the
+    task (secure aggregation: a device waits for the close, then answers the unmasking).
     """
     work = config.workload
     n = device.size
     dtype_codes, region_codes = fleet_arrays["device_type"], fleet_arrays["region"]
     disruptions = config.disruptions
 
-    def factor(kind: str) -> np.ndarray:
-        return disruption_factor(disruptions, kind, accept_s, dtype_codes, region_codes, type_names, region_names)
-
-    bandwidth = factor("network-slowdown")
-    compute = factor("compute-drift")
-    crash = factor("crash-surge")
-    download_s, train_s, upload_s = task_times(
-        work, fleet_arrays["down_mbps"], fleet_arrays["up_mbps"], fleet_arrays["samples"],
-        fleet_arrays["sample_cost_s"], bandwidth, compute,
-    )
-    task_s = download_s + train_s + upload_s
+    bandwidth, compute, crash = (
+        disruption_factor(disruptions, kind, accept_s, dtype_codes, region_codes, type_names, region_names)
+        for kind in ("network-slowdown", "compute-drift", "crash-surge"))
+    names, durations, powers, bytes_down, bytes_up, (unmask_s, unmask_bytes) = _phases(
+        config, fleet_arrays, n, bandwidth, compute)
+    ends = np.cumsum(durations, axis=0)
+    task_s = ends[-1]
     hazard = work.crash_rate / 3600.0 * crash  # crash_rate is per hour
     crash_draw = rng.exponential(1.0, size=n)
     with np.errstate(divide="ignore"):
         crash_at = np.where(hazard > 0, crash_draw / hazard, np.inf)
-    # Nothing of the signals matters after the task has certainly ended.
-    ends_by = np.minimum(np.minimum(task_s, crash_at), work.execution_limit)
+    # Nothing of the signals matters after the task (and any wait and unmasking) has certainly ended.
+    ends_by = np.minimum(np.minimum(task_s + wait_s + unmask_s, crash_at), work.execution_limit)
     followed = [1 + SIGNALS.index(name) for name in set(work.requires) | {"charging"}]
     paths = signals.paths(device, checkin_s, accept_s + ends_by, rng, followed)
     times, on = _signal_events(paths, signals, device)
     rel = times - accept_s[:, None]
     candidates = [np.full(n, np.inf)] * len(CAUSES)
     candidates[1:1 + len(SIGNALS)] = _signal_losses(work, rel, on)
-    points, levels, slopes = _battery_path(
-        (download_s, train_s, upload_s), battery_pct, _charging_changes(rel, on, charging), charging,
-        fleet_arrays["train_power_w"], fleet_arrays["radio_power_w"], fleet_arrays["charge_power_w"],
-        fleet_arrays["battery_wh"],
+    points, levels, slopes = battery_path(
+        ends, powers, battery_pct, _charging_changes(rel, on, charging), charging,
+        fleet_arrays["charge_power_w"], fleet_arrays["battery_wh"],
     )
-    candidates[_BATTERY] = _battery_crossing(points, levels, slopes, work.min_battery)
+    candidates[_BATTERY] = battery_crossing(points, levels, slopes, work.min_battery)
     candidates[_EXECUTION_LIMIT] = np.full(n, work.execution_limit)
     candidates[_CRASH] = crash_at
-    stacked = np.stack(candidates[1:], axis=0)
-    first = np.argmin(stacked, axis=0)
-    first_at = stacked[first, np.arange(n)]
+    first, first_at = _earliest(candidates)
     drops = first_at < task_s
+    examples, weight = work.local_work(fleet_arrays["samples"])
     return Cohort(
         device=device,
         accept_s=accept_s,
-        download_s=download_s,
-        train_s=train_s,
-        upload_s=upload_s,
+        phases=tuple(PHASES.index(name) for name in names),
+        durations=durations,
+        powers=powers,
+        bytes_down=bytes_down,
+        bytes_up=bytes_up,
+        examples=examples,
+        weight=weight,
+        local_s=examples * fleet_arrays["sample_cost_s"] * compute,
         drop_at=np.where(drops, first_at, np.inf),
         cause=np.where(drops, first + 1, 0).astype(np.int8),
+        interrupt_at=first_at,
+        interrupt_cause=(first + 1).astype(np.int8),
+        unmask_s=unmask_s,
+        unmask_bytes=unmask_bytes,
         battery_start_pct=battery_pct,
-        radio_w=fleet_arrays["radio_power_w"],
-        train_w=fleet_arrays["train_power_w"],
-        model_bytes=work.model_size,
-        update_bytes=work.upload_bytes,
         paths=paths,
         battery_points=points,
         battery_levels=levels,

@@ -35,7 +35,7 @@ __all__ = ["Result", "simulate", "STREAMS"]
 MAX_SEED = 2**63 - 1
 """The largest seed (seeds are whole numbers from 0 on)."""
 
-STREAMS = ("fleet", "checkin", "battery", "task", "policy", "census")
+STREAMS = ("fleet", "checkin", "battery", "task", "policy", "census", "pacing")
 
 CENSUS_EVERY_S = 900.0
 """How often the eligible devices are counted (the counts feed eligible shares and hourly load)."""

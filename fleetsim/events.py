@@ -30,8 +30,10 @@ CAUSES = ("none", "idle-ended", "charging-ended", "unmetered-ended", "battery-lo
 unplugged, left the unmetered network), the battery fell to its floor, the OS execution limit
 ended the task, or the app crashed."""
 
-PHASES = ("none", "download", "train", "upload")
-"""Task phases by code (0: not applicable)."""
+PHASES = ("none", "download", "train", "upload", "key-advertisement", "key-sharing", "unmasking")
+"""Task phases by code (0: not applicable). With secure aggregation a task runs download,
+key-advertisement, key-sharing, train, upload, then (its report on time) waits for the round's
+close and answers the unmasking."""
 
 WASTE_CAUSES = (
     "used",
@@ -46,13 +48,15 @@ WASTE_CAUSES = (
     "selection-timeout",
     "report-deadline",
     "server-outage",
+    "unmasking-failed",
 )
 """Why a participation's work was not used by a committed round ("used": it was)."""
 
-ROUND_STATUS = ("committed", "selection-timeout", "report-deadline", "server-outage")
+ROUND_STATUS = ("committed", "selection-timeout", "report-deadline", "server-outage", "unmasking-failed")
 """What became of a round, named by what ended it: it committed; the selection timeout passed
-before enough devices were accepted; the report deadline passed with too few reports; or a
-server outage cut it. A round that did not commit wastes its work for the same word."""
+before enough devices were accepted; the report deadline passed with too few reports; a
+server outage cut it; or, with secure aggregation, too few devices answered the unmasking for
+the server to unmask the sum. A round that did not commit wastes its work for the same word."""
 
 _OUT = {name: i for i, name in enumerate(OUTCOMES)}
 _WASTE = {name: i for i, name in enumerate(WASTE_CAUSES)}
@@ -65,15 +69,18 @@ def json_key(word: str) -> str:
     return word.replace("-", "_")
 
 
-def round_status(lost: bool, enough: bool, reports: int, required: int) -> str:
+def round_status(lost: bool, enough: bool, reports: int, required: int, unmasked: bool = True) -> str:
     """A round's status: ``server-outage`` if an outage cut it, ``selection-timeout`` if too few
-    devices were accepted (``enough`` false), else ``committed`` with at least ``required``
-    reports, else ``report-deadline``."""
+    devices were accepted (``enough`` false), ``report-deadline`` with fewer than ``required``
+    reports, ``unmasking-failed`` if the sum could not be unmasked (``unmasked`` false), else
+    ``committed``."""
     if lost:
         return "server-outage"
     if not enough:
         return "selection-timeout"
-    return "committed" if reports >= required else "report-deadline"
+    if reports < required:
+        return "report-deadline"
+    return "committed" if unmasked else "unmasking-failed"
 
 
 def outcome_codes(on_time: np.ndarray, late: np.ndarray, dropout: np.ndarray) -> np.ndarray:
@@ -108,6 +115,7 @@ PARTICIPATION_COLUMNS = {
     "device_type": np.int16,
     "region": np.int16,
     "accepted_s": np.float64,
+    "started_s": np.float64,
     "ended_s": np.float64,
     "download_s": np.float64,
     "train_s": np.float64,
@@ -124,6 +132,8 @@ PARTICIPATION_COLUMNS = {
     "battery_start_pct": np.float64,
     "battery_used_pct": np.float64,
     "samples": np.int32,
+    "examples_processed": np.float64,
+    "weight": np.float64,
 }
 
 ROUND_COLUMNS = {
@@ -131,10 +141,14 @@ ROUND_COLUMNS = {
     "opened_s": np.float64,
     "selected_s": np.float64,
     "closed_s": np.float64,
+    "ended_s": np.float64,
     "accepted": np.int32,
     "reports": np.int32,
     "status": np.int8,
     "checkins": np.int64,
+    "unmask_responses": np.int32,
+    "held_s": np.float64,
+    "stretch": np.int32,
 }
 
 

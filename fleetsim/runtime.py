@@ -44,6 +44,12 @@ class FleetRuntime:
         self.sorted_phase = fleet.checkin_phase_s[self.order]
         self.capable = fleet.memory_bytes >= config.workload.memory_needed
         self.free_at = np.full(n, -np.inf)
+        # Paced runs (fleetsim.pacing): a turned-away device stays away ``stretch`` check-in
+        # periods, so it checks in only at the ticks k with (k + pace_offset) % stretch == 0.
+        self.stretch = 1
+        self.pace_offset = (
+            rngs["pacing"].integers(0, 2**20, size=n) if config.rounds.pacing is not None else np.zeros(n, np.int64)
+        )
         self.last_participation = np.full(n, -np.inf)
         self.participations = np.zeros(n, dtype=np.int32)
         self.group = fleet.group
@@ -94,9 +100,12 @@ class FleetRuntime:
 
     def free_ticks(self, start: float, end: float) -> tuple[np.ndarray, np.ndarray]:
         """Ticks in [start, end) of devices that could check in (memory fits, not busy or
-        resting), sorted by time. Nothing is observed."""
+        resting, and with pacing not told to stay away), sorted by time. Nothing is observed."""
         devices, times = self.ticks(start, end)
         keep = self.capable[devices] & (self.free_at[devices] <= times)
+        if self.stretch > 1:
+            k = np.rint((times - self.fleet.checkin_phase_s[devices]) / self.checkin_every).astype(np.int64)
+            keep &= (k + self.pace_offset[devices]) % self.stretch == 0
         return devices[keep], times[keep]
 
     def eligible(self, devices: np.ndarray, times: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

@@ -9,6 +9,11 @@ told to stop; a device already uploading finishes and its report is refused as l
 next round opens after the aggregation time. A server outage loses the round it cuts and
 holds the next one until it ends. Every accepted device then rests for ``rest``.
 
+A task starts at acceptance, or (``configure: after-selection``) for the whole cohort when
+the selection ends, in which case a round abandoned at selection starts none. With secure
+aggregation the devices that reported on time answer the unmasking after the close; with
+fewer answers than the threshold the round ends ``unmasking-failed``.
+
 A device is in a round at most once: within a collection window it is one candidate (its
 first eligible tick, however often it ticks in the window), from acceptance it is busy until
 its participation ends and its rest is over, and the engine refuses a policy's choice that
@@ -28,15 +33,17 @@ import simpy
 
 from .client import Cohort, resolve_cohort
 from .config import Config
-from .errors import FleetsimError
-from .events import ROUND_STATUS, EventLog, outcome_codes, round_status, waste_codes
-from .policies import Candidates, RoundView, SelectionPolicy
+from .events import PHASES, ROUND_STATUS, EventLog, outcome_codes, round_status, waste_codes
+from .pacing import Pacer
+from .policies import SelectionPolicy
 from .runtime import FleetRuntime
+from .selecting import Selector
 
 __all__ = ["RoundServer"]
 
 _STATUS = {name: i for i, name in enumerate(ROUND_STATUS)}
-_UPLOAD = 3  # phase code of the upload (events.PHASES)
+_UPLOAD = PHASES.index("upload")
+_UNMASKING = PHASES.index("unmasking")
 
 
 class RoundServer:
@@ -67,8 +74,8 @@ class RoundServer:
             (d.start, d.start + d.duration) for d in config.disruptions if d.kind == "server-outage"
         )
         self.round_index = 0
-        self._rate: float | None = None  # eligible check-ins per second seen lately (sizes arrival windows)
-        self._eligible_share = 0.1  # share of free ticks found eligible lately (sizes ranked batches)
+        self.pacer = Pacer(config, runtime) if config.rounds.pacing is not None else None
+        self.selector = Selector(config, runtime, policy, rngs, self.type_shares)
 
     # -------------------------------------------------------------------------- helpers
 
@@ -83,219 +90,98 @@ class RoundServer:
         return min(starts) if starts else np.inf
 
     def run(self) -> Generator[Any, Any, None]:
-        """The server process: open rounds until the horizon ends."""
+        """The server process: open rounds until the horizon ends.
+
+        A round holds a slot from its opening to its end plus the aggregation time; at most
+        ``in_flight`` slots are held at once, and the next round opens once the previous one's
+        selection has ended and a slot is free. With pacing the server first answers the
+        check-ins since its last look and holds the round while it is predicted not to fill."""
         env = self.env
+        rounds = self.config.rounds
+        busy: list[float] = []  # when each round in flight frees its slot
         while env.now < self.horizon_s:
             outage = self._outage_at(env.now)
             if outage is not None:
                 yield env.timeout(outage[1] - env.now)
                 continue
-            closed = self._round(env.now)
-            yield env.timeout(max(closed - env.now, 0.0))
+            held = 0.0
+            if self.pacer is not None:
+                # Hold while the round is predicted not to fill, looking again every recheck.
+                while not self.pacer.ready() and env.now < self.horizon_s and self._outage_at(env.now) is None:
+                    step = min(self.pacer.recheck, self._next_outage_after(env.now) - env.now)
+                    self.pacer.look(env.now, env.now + step)
+                    yield env.timeout(step)
+                    held += step
+                if env.now >= self.horizon_s or self._outage_at(env.now) is not None:
+                    continue
+                self.pacer.set_stretch()
+            selected_at, ended = self._round(env.now, held)
+            busy = [b for b in busy if b > selected_at] + [ended + rounds.aggregation_time]
+            next_open = max(selected_at, env.now)
+            while sum(b > next_open for b in busy) >= rounds.in_flight:
+                next_open = min(b for b in busy if b > next_open)
+            yield env.timeout(next_open - env.now)
             if self.on_progress is not None:
                 self.on_progress(max(env.now, 0.0))
-            yield env.timeout(self.config.rounds.aggregation_time)
 
     # -------------------------------------------------------------------------- one round
 
-    def _select(self, opened: float, index: int) -> tuple[Any, ...]:
-        """Fill round ``index``: accepted devices, check-in and acceptance times, battery %,
-        charging; the selection's end; the eligible check-ins seen from ``opened`` to the
-        selection's end (one per device and window; a ranking policy's windows look only at
-        as many as it can use).
-
-        Raises FleetsimError naming the policy, the round and the time if the policy's choice
-        is out of range, names a device twice, or names one the round already holds.
-        """
+    def _round(self, opened: float, held_s: float) -> tuple[float, float]:
+        """Run one round from ``opened`` (after it was held ``held_s``); log it; return when its
+        selection ended and when it ended (its close, or with secure aggregation the end of the
+        unmasking)."""
         rounds = self.config.rounds
-        runtime, policy = self.runtime, self.policy
-        rng = self.rngs["policy"]
-        n_types = len(runtime.fleet.type_names)
-        accept_count = rounds.accept_count
-        # An outage cuts the selection short (the round is then lost at the outage start).
-        timeout_at = min(opened + rounds.selection_timeout, self._next_outage_after(opened))
-        needed = accept_count
-        by_type = np.zeros(n_types, dtype=np.int64)
-        chunks: list[tuple[np.ndarray, ...]] = []
-        t = opened
-        checkins = 0
-        selected_at = timeout_at
-        in_round = np.zeros(runtime.fleet.size, dtype=bool)
-        while needed > 0 and t < timeout_at:
-            length = policy.window_s
-            if not policy.holds_checkins and self._rate:
-                # Causal policies: a window long enough for the needed check-ins, no longer.
-                length = min(length, max(1.0, 2.0 * needed / self._rate))
-            end = min(t + length, timeout_at)
-            view = RoundView(
-                round_index=index,
-                opened_s=opened,
-                now_s=t,
-                timeout_s=timeout_at,
-                accept_count=accept_count,
-                needed=needed,
-                accepted_by_type=by_type.copy(),
-                type_shares=self.type_shares,
-            )
-            devices, times, battery, charging = self._window(t, end, view, rng)
-            checkins += devices.size
-            if end > t and devices.size:
-                self._rate = max(devices.size / (end - t), 1e-3)
-            if devices.size == 0:
-                t = end
-                continue
-            candidates = self._candidates(devices, times, battery, charging)
-            chosen = np.asarray(policy.choose(candidates, view, rng), dtype=np.int64)
-            self._check_choice(chosen, devices, needed, in_round, index, t)
-            if chosen.size:
-                chosen.sort()
-                at = times[chosen] if not policy.holds_checkins else np.full(chosen.size, end)
-                chunks.append((devices[chosen], times[chosen], at, battery[chosen], charging[chosen]))
-                runtime.accept(devices[chosen])
-                in_round[devices[chosen]] = True
-                np.add.at(by_type, runtime.fleet.device_type[devices[chosen]], 1)
-                needed -= chosen.size
-                if needed == 0:
-                    selected_at = float(at.max())
-                    # A causal policy's window may run past the selection's end: those check-ins
-                    # came after the round was full and are not the selection's.
-                    checkins -= int((times > selected_at).sum())
-            t = end
-        if not chunks:
-            empty = np.empty(0)
-            return empty.astype(np.int64), empty, empty, empty, empty.astype(bool), timeout_at, checkins
-        devices, checkin, at, battery, charging = (np.concatenate(parts) for parts in zip(*chunks, strict=True))
-        return devices, checkin, at, battery, charging, selected_at, checkins
-
-    def _candidates(
-        self, devices: np.ndarray, times: np.ndarray, battery: np.ndarray, charging: np.ndarray
-    ) -> Candidates:
-        """The check-ins as a policy sees them (per-device traits gathered on demand)."""
-        fleet = self.runtime.fleet
-        return Candidates(devices, times, battery, charging, self.runtime.traits(), fleet.type_names,
-                          fleet.region_names)
-
-    def _check_choice(
-        self, chosen: np.ndarray, devices: np.ndarray, needed: int, in_round: np.ndarray, index: int, t: float
-    ) -> None:
-        """Raise FleetsimError unless ``chosen`` names at most ``needed`` positions in range, and
-        distinct devices the round does not already hold (a device is in a round at most once)."""
-        name = type(self.policy).__name__
-        where = f"in round {index} at t={t:.3f} s"
-        if chosen.size > needed or (chosen.size and (chosen.min() < 0 or chosen.max() >= devices.size)):
-            raise FleetsimError(
-                f"selection policy {name} returned invalid positions {where} "
-                f"(need at most {needed} distinct positions in 0..{devices.size - 1})"
-            )
-        picked = devices[chosen]
-        unique, counts = np.unique(picked, return_counts=True)
-        twice = unique[counts > 1]
-        held = picked[in_round[picked]]
-        if twice.size or held.size:
-            device = int(twice[0]) if twice.size else int(held[0])
-            what = "twice" if twice.size else "already accepted in this round"
-            raise FleetsimError(
-                f"selection policy {name} returned invalid positions {where}: device {device} {what} "
-                f"(a device is in a round at most once)"
-            )
-
-    def _window(
-        self, start: float, end: float, view: RoundView, rng: np.random.Generator
-    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-        """The eligible check-ins of one collection window, in check-in order.
-
-        A policy that ranks check-ins before eligibility is known (``rank``) gets only as many
-        as it can use: ticks are looked at in rank order until enough are eligible. The policy
-        then chooses among a set that holds its top choices, which gives the same outcome as
-        showing it every eligible check-in, at a cost that does not grow with the fleet.
-        """
-        runtime = self.runtime
-        devices, times = runtime.free_ticks(start, end)
-        key = None
-        # A window longer than the check-in period holds several ticks of a device; it is ranked
-        # once (at its first tick) and its ticks are looked at together (runtime.eligible).
-        repeats = end - start > runtime.checkin_every
-        first = np.unique(devices, return_index=True)[1] if repeats else np.arange(devices.size)
-        first.sort()
-        if devices.size:
-            d0, t0 = devices[first], times[first]
-            blank = self._candidates(d0, t0, np.full(d0.size, np.nan), np.zeros(d0.size, bool))
-            key = self.policy.rank(blank, view, rng)  # None: no ranking (SelectionPolicy.rank)
-        if key is None:
-            live, battery, charging = runtime.eligible(devices, times)
-            return devices[live], times[live], battery, charging
-        key = np.asarray(key, dtype=float)
-        if key.shape != (first.size,) or np.isnan(key).any():
-            raise FleetsimError(
-                f"selection policy {type(self.policy).__name__}.rank returned keys of shape {key.shape}"
-                f"{' with NaN' if key.shape == (first.size,) else ''} in round {view.round_index} at t={start:.3f} s "
-                f"(need one number per candidate, {first.size}; +inf: never chosen)"
-            )
-        remaining = np.flatnonzero(key < np.inf)  # +inf: never chosen (-inf ranks first)
-        found: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
-        count = 0
-        while remaining.size and count < view.needed:
-            size = max(64, int(2.0 * (view.needed - count) / self._eligible_share))
-            if size < remaining.size:
-                # The `size` lowest keys (ties by check-in order), without sorting the rest.
-                part = np.argpartition(key[remaining], size - 1)
-                top = remaining[part[:size]]
-                cut = key[remaining[part[size - 1]]]
-                tied = remaining[part[size:]][key[remaining[part[size:]]] == cut]
-                if tied.size:  # keep tie order stable: the earliest check-ins of the cut key
-                    low = top[key[top] < cut]
-                    at_cut = np.sort(np.concatenate([top[key[top] == cut], tied]))
-                    top = np.concatenate([low, at_cut[: size - low.size]])
-                batch = np.sort(top)
-                remaining = np.setdiff1d(remaining, batch, assume_unique=True)
-            else:
-                batch, remaining = remaining, remaining[:0]
-            ticks = first[batch] if not repeats else np.flatnonzero(np.isin(devices, devices[first[batch]]))
-            live, battery, charging = runtime.eligible(devices[ticks], times[ticks])
-            self._eligible_share = min(1.0, max(live.size / batch.size, 0.01))
-            found.append((ticks[live], battery, charging))
-            count += live.size
-        if not found:
-            empty = np.empty(0)
-            return empty.astype(np.int64), empty, empty, empty.astype(bool)
-        positions, battery, charging = (np.concatenate(parts) for parts in zip(*found, strict=True))
-        in_time = np.argsort(positions, kind="stable")
-        positions = positions[in_time]
-        return devices[positions], times[positions], battery[in_time], charging[in_time]
-
-    def _round(self, opened: float) -> float:
-        """Run one round from ``opened``; log it; return its close time."""
-        rounds = self.config.rounds
+        secure = rounds.secure_aggregation
         index = self.round_index
         self.round_index += 1
-        devices, checkin_s, accept_s, battery, charging, selected_at, checkins = self._select(opened, index)
-        selected_at, checkins = float(selected_at), int(checkins)
+        # An outage cuts the selection short (the round is then lost at the outage start).
+        timeout_at = min(opened + rounds.selection_timeout, self._next_outage_after(opened))
+        picked = self.selector.select(opened, index, timeout_at)
+        if self.pacer is not None:
+            self.pacer.met(picked.selected_at - opened, picked.met)
+        devices, checkin_s, accept_s = picked.devices, picked.checkin_s, picked.accept_s
+        battery, charging = picked.battery, picked.charging
+        selected_at, checkins = float(picked.selected_at), int(picked.checkins)
         n = devices.size
         enough = n >= rounds.required_reports
-        cohort = self._resolve(devices, accept_s, checkin_s, charging, battery)
-        report_at = accept_s + np.where(np.isinf(cohort.drop_at), cohort.task_s, np.inf)
+        after = rounds.configure == "after-selection"
+        start_s = np.full(n, selected_at) if after else accept_s
+        wait_s = rounds.selection_timeout + rounds.report_deadline if secure is not None else 0.0
+        cohort = self._resolve(devices, start_s, checkin_s, charging, battery, wait_s)
+        # after-selection: a round abandoned at selection (too few accepted, or cut by an
+        # outage) starts no task.
+        cut = self._next_outage_after(opened) <= selected_at
+        started = not after or (enough and not cut)
+        report_at = start_s + np.where(np.isinf(cohort.drop_at) & started, cohort.task_s, np.inf)
         closed, lost = self._close_at(opened, selected_at, report_at, enough)
 
-        rel_close = closed - accept_s
+        rel_close = closed - start_s
         on_time = report_at <= closed
-        dropped = ~on_time & (cohort.drop_at <= rel_close)
-        working = ~on_time & ~dropped
+        dropped = ~on_time & (cohort.drop_at <= rel_close) & started
+        working = ~on_time & ~dropped & started
         # At close a device already uploading finishes (its report is late) or drops out on the way.
         uploading = working & (cohort.phase_at(rel_close) == _UPLOAD) & (not lost)
         late = uploading & np.isinf(cohort.drop_at)
         is_drop = dropped | (uploading & ~late)
 
-        end_rel = np.where(on_time | late, cohort.task_s, rel_close)
+        end_rel = np.where(on_time | late, cohort.task_s, np.maximum(rel_close, 0.0) if started else 0.0)
         end_rel = np.where(is_drop, cohort.drop_at, end_rel)
         cause = np.where(is_drop, cohort.cause, 0).astype(np.int8)
+        phase = np.where(is_drop, cohort.phase_at(cohort.drop_at), 0).astype(np.int8)
         n_reports = int(on_time.sum())
-        status = round_status(lost, enough, n_reports, rounds.required_reports)
+        ended, responses, unmask_from = float(closed), 0, None
+        if secure is not None and on_time.any() and not lost:
+            ended, responses, unmask_from, end_rel, cause, phase = self._unmask(
+                cohort, on_time, rel_close, end_rel, cause, phase, closed)
+        unmasked = secure is None or responses >= secure.needed(n)
+        status = round_status(lost, enough, n_reports, rounds.required_reports, unmasked)
         used = on_time & (status == "committed")
         self._log_participations(
-            index, cohort, end_rel,
+            index, cohort, end_rel, unmask_from,
+            accepted_s=accept_s,
             outcome=outcome_codes(on_time, late, is_drop),
             dropout_cause=cause,
-            dropout_phase=np.where(is_drop, cohort.phase_at(cohort.drop_at), 0).astype(np.int8),
+            dropout_phase=phase,
             waste_cause=waste_codes(status, late, is_drop, cause, used),
             used=used,
         )
@@ -304,17 +190,42 @@ class RoundServer:
             opened_s=opened,
             selected_s=float(selected_at),
             closed_s=float(closed),
+            ended_s=ended,
             accepted=n,
             reports=n_reports,
             status=_STATUS[status],
             checkins=int(checkins),
+            unmask_responses=responses,
+            held_s=held_s,
+            stretch=self.runtime.stretch,
         )
         self.runtime.release(cohort, end_rel)
-        return float(closed)
+        return selected_at, ended
+
+    def _unmask(
+        self, cohort: Cohort, on_time: np.ndarray, rel_close: np.ndarray, end_rel: np.ndarray,
+        cause: np.ndarray, phase: np.ndarray, closed: float,
+    ) -> tuple[float, int, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """Secure aggregation's unmasking after the close: every device whose report arrived on
+        time answers within its unmasking time unless interrupted first (it then ends there,
+        with its cause and the unmasking phase). Returns the round's end, the answers, when
+        each device began the unmasking (inf: it did not), and the updated ends, causes and
+        phases. An outage during the unmasking is not modelled (the round is judged at its
+        close)."""
+        finish = rel_close + cohort.unmask_s
+        answered = on_time & (cohort.interrupt_at > finish)
+        broken = on_time & ~answered
+        end_rel = np.where(answered, finish, end_rel)
+        end_rel = np.where(broken, np.maximum(cohort.interrupt_at, cohort.task_s), end_rel)
+        cause = np.where(broken, cohort.interrupt_cause, cause).astype(np.int8)
+        phase = np.where(broken, _UNMASKING, phase).astype(np.int8)
+        unmask_from = np.where(on_time, rel_close, np.inf)
+        ended = float(closed + cohort.unmask_s[on_time].max())
+        return ended, int(answered.sum()), unmask_from, end_rel, cause, phase
 
     def _resolve(
         self, devices: np.ndarray, accept_s: np.ndarray, checkin_s: np.ndarray, charging: np.ndarray,
-        battery: np.ndarray,
+        battery: np.ndarray, wait_s: float,
     ) -> Cohort:
         """The accepted devices' tasks, resolved from their traits (:func:`fleetsim.client.resolve_cohort`)."""
         fleet = self.runtime.fleet
@@ -332,7 +243,7 @@ class RoundServer:
         }
         return resolve_cohort(
             self.config, arrays, devices, accept_s, checkin_s, charging, battery, self.runtime.signals,
-            self.rngs["task"], fleet.type_names, fleet.region_names,
+            self.rngs["task"], fleet.type_names, fleet.region_names, wait_s,
         )
 
     def _close_at(self, opened: float, selected_at: float, report_at: np.ndarray, enough: bool) -> tuple[float, bool]:
@@ -351,19 +262,21 @@ class RoundServer:
         lost = bool(outage_start <= closed)
         return (float(outage_start) if lost else float(closed)), lost
 
-    def _log_participations(self, index: int, cohort: Cohort, end_rel: np.ndarray, **columns: np.ndarray) -> None:
-        """Append the round's participations to the log (``columns``: outcome, cause, phase,
-        waste_cause, used); work done is counted up to each participation's end."""
+    def _log_participations(
+        self, index: int, cohort: Cohort, end_rel: np.ndarray, unmask_from: np.ndarray | None, **columns: np.ndarray,
+    ) -> None:
+        """Append the round's participations to the log (``columns``: accepted_s, outcome,
+        cause, phase, waste_cause, used); work done is counted up to each participation's end."""
         fleet = self.runtime.fleet
-        devices, accept_s = cohort.device, cohort.accept_s
-        compute_s, download_bytes, upload_bytes, energy_wh = cohort.work_until(end_rel)
+        devices, start_s = cohort.device, cohort.accept_s
+        compute_s, download_bytes, upload_bytes, energy_wh, examples = cohort.work_until(end_rel, unmask_from)
         self.log.add_participations(
             round=np.full(devices.size, index),
             device=devices,
             device_type=fleet.device_type[devices],
             region=fleet.region[devices],
-            accepted_s=accept_s,
-            ended_s=accept_s + end_rel,
+            started_s=start_s,
+            ended_s=start_s + end_rel,
             download_s=cohort.download_s,
             train_s=cohort.train_s,
             upload_s=cohort.upload_s,
@@ -374,5 +287,7 @@ class RoundServer:
             battery_start_pct=cohort.battery_start_pct,
             battery_used_pct=100.0 * energy_wh / fleet.battery_wh[devices],
             samples=fleet.samples[devices],
+            examples_processed=examples,
+            weight=cohort.weight,
             **columns,
         )

@@ -1,7 +1,7 @@
 """Kaplan-Meier estimate of task survival (time from acceptance to dropout) with 95% bands,
 and the task-survival tables built from it (pure functions, no I/O).
 
-A participation's duration is ``ended_s - accepted_s``; it is an event when its outcome is
+A participation's duration is ``ended_s - started_s``; it is an event when its outcome is
 ``dropout`` and right-censored otherwise (the task reported, was late or was stopped at
 close, so its dropout time is only known to exceed the duration).
 
@@ -127,11 +127,11 @@ fleet, with an empty ``device_type``), so that no device type name can be mistak
 def task_durations(participations: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
     """(duration s, dropped out, device type, rows left out) of the participations.
 
-    Reads ``accepted_s``, ``ended_s``, ``outcome`` and ``device_type``. A row whose end
+    Reads ``started_s``, ``ended_s``, ``outcome`` and ``device_type``. A row whose end
     precedes its acceptance (or is not a number) has no duration to analyse; it is left out
     and counted.
     """
-    duration = (participations["ended_s"] - participations["accepted_s"]).to_numpy(dtype=float)
+    duration = (participations["ended_s"] - participations["started_s"]).to_numpy(dtype=float)
     ok = np.isfinite(duration) & (duration >= 0)
     dropped = (participations["outcome"] == "dropout").to_numpy(dtype=bool)
     kind = participations["device_type"].astype(str).to_numpy()

@@ -5,7 +5,9 @@ engine's docstrings, and shares none of the engine's signal, runtime, server or 
 (it reuses only :mod:`fleetsim.config` for parsing and for the merged (device type, region)
 specs, and :func:`fleetsim.fleet.sample_fleet` for the devices' static traits and their
 (type, region) pairs drawn from the joint mix, so that engine and oracle see the same fleet
-for a seed).
+for a seed). The round protocol's arithmetic (local work, update bytes and encoding time,
+secure aggregation's phases and threshold) is written out here from docs/fleet-file.md, not
+taken from the config's helpers.
 
 Everything is simulated the slow, obvious way, with one simpy process per chain and device:
 
@@ -36,23 +38,51 @@ Everything is simulated the slow, obvious way, with one simpy process per chain 
   in its merged spec and Z a standard-normal score per device: Z ~ N(0, 1) at the first
   look, then Z' = w Z + sqrt(1 - w^2) N(0, 1) with w = exp(-(t - t0) / correlation_time)
   since the last record (Z, t0); every look records (Z', t). At the end of a participation
-  the level L and charging state c there are recorded as Z = Phi^{-1}(F_c(L));
-- an accepted device downloads, trains and uploads with real simpy timeouts, interrupted by
-  one of its required signals turning off (several at once, as when the settled chain
-  ends: the first of idle, charging, unmetered names the cause), a crash (exponential
-  hazard), the OS execution limit (measured from acceptance), the battery falling below the
-  minimum (linear drain per phase, less the charger whenever the charging signal is on,
-  capped at 100 %), or the round closing while it downloads or trains (it is stopped; an
-  upload in flight finishes and is late);
+  the level L and charging state c there are recorded as Z = Phi^{-1}(F_c(L)) (L: the level
+  the task left, as of its upload's end at the latest; the level seen at check-in for a
+  task that never started);
+- a task starts at the device's acceptance (``configure: at-acceptance``) or, with
+  ``configure: after-selection``, when the selection ends: the accepted device waits,
+  reserved and not working, and then every accepted device's task starts at that instant;
+  if the selection ended with too few accepted, no task starts (each participation ends
+  there, stopped, with no work), and a required signal that turned off at any time while
+  it waited makes the device drop out at its start;
+- the task's phases run with real simpy timeouts: download, (with secure aggregation,
+  key advertisement and key sharing), training, upload. Training is the local steps, then
+  the update's encoding: n' = min(samples, max_examples), steps = min(epochs *
+  ceil(n' / batch), max_steps), steps * batch examples at the device's per-sample cost, then
+  model_size / 4 / 1e6 * (encode_time + rotation_time if rotation) seconds; the update is
+  n_w * keep * bits / 8 bytes plus, when sparsified, min(n_w * keep * 4, n_w / 8) bytes of
+  positions (n_w = model_size / 4 weights). Each secure-aggregation phase lasts its fixed
+  time plus the transfer of its bytes at the device's rates (advertisement: 2 key_bytes up,
+  2 key_bytes * n down; sharing: (n - 1) share_bytes each way; the masked upload: n_w *
+  (bits + ceil(log2 n)) / 8 bytes; n the round's accepted count);
+- a task is interrupted by one of its required signals turning off (several at once, as
+  when the settled chain ends: the first of idle, charging, unmetered names the cause), a
+  crash (exponential hazard from the task's start), the OS execution limit (measured from
+  the task's start), the battery falling below the minimum (linear drain per phase: radio
+  power in the transfer and key phases, training power in training and encoding, less the
+  charger whenever the charging signal is on, capped at 100 %), or the round closing before
+  its upload (it is stopped; an upload in flight finishes and is late);
+- with secure aggregation an on-time reporter then waits for the round's close and answers
+  the unmasking for its fixed time plus (n - 1) share_bytes up, exposed through both to
+  its signals, the crash and the execution limit (not the battery, which is followed
+  through the upload only); interrupted, it stays on time with that dropout cause and
+  phase "unmasking" and ends there; the unmasking's bytes and radio energy count for the
+  time spent in it;
 - a server process runs the round protocol: accept up to ceil(target * over_selection)
   until the selection timeout (fewer than min_reports accepted: selection-timeout), then wait for
   target_reports reports or the report deadline counted from the end of selection, commit
-  with at least min_reports, wait the aggregation time, open the next round; an accepted
-  device rests for ``rest`` after its participation ends. The server starts
-  ``horizon.warmup`` before the horizon (unset: the rest period, at most two days) and the
-  rounds it opens before the horizon start are not reported, as the engine documents.
+  with at least min_reports (with secure aggregation also at least ceil(threshold *
+  accepted) answers to the unmasking, else "unmasking-failed"; the round then ends at its
+  close plus the longest unmasking time of its on-time reporters), wait the aggregation
+  time, open the next round; an accepted device rests for ``rest`` after its participation
+  ends. The server starts ``horizon.warmup`` before the horizon (unset: the rest period, at
+  most two days) and the rounds it opens before the horizon start are not reported, as the
+  engine documents.
 
-Disruptions and selection policies other than first-come are not modelled.
+Disruptions, selection policies other than first-come, pacing and more than one round in
+flight are not modelled.
 
 It is slow (pure Python, an event per chain flip and per check-in tick): use it on a few
 thousand devices over a day or less. :func:`simulate_oracle` returns DataFrames whose rows
@@ -66,6 +96,7 @@ import math
 import random
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
+from fractions import Fraction
 from zoneinfo import ZoneInfo
 
 import pandas as pd
@@ -194,18 +225,44 @@ class _Grid:
 
 
 @dataclass
+class _Phase:
+    """One phase of a task: its length (s), the power it draws (W), whether the battery is
+    followed through it, and the bytes it moves each way over its whole length."""
+
+    name: str
+    length: float
+    power_w: float
+    followed: bool = True
+    down_bytes: float = 0.0
+    up_bytes: float = 0.0
+
+
+@dataclass
+class _Plan:
+    """A device's task in a round: the phases in order and the local-work arithmetic."""
+
+    phases: list[_Phase]
+    unmask: _Phase | None  # secure aggregation's unmasking (from the round's close), else None
+    steps: int  # local steps (batches)
+    batch: int
+    local_s: float  # the local steps' time (the training phase less the encoding)
+    weight: float  # the FedAvg weight: distinct examples trained on
+
+
+@dataclass
 class _Part:
     round: int
     device: int
     accepted_s: float
     battery_start_pct: float
+    started_s: float = _INF
     ended_s: float = _INF
     outcome: str = ""
     cause: str = "none"
     phase: str = "none"
-    download_done: float = 0.0
-    train_done: float = 0.0
-    upload_done: float = 0.0
+    plan: _Plan | None = None
+    done: dict[str, float] = field(default_factory=dict)  # seconds spent in each phase entered
+    survived: bool = False  # secure aggregation: an on-time reporter that answered the unmasking
 
 
 @dataclass
@@ -213,16 +270,20 @@ class _Round:
     index: int
     opened_s: float
     full: simpy.Event
+    selected: simpy.Event  # the selection's end
     target: simpy.Event
     close: simpy.Event
     selecting: bool = True
     closed: bool = False
+    abandoned: bool = False  # after-selection: the selection failed, so no task starts
     selected_s: float = _INF
     closed_s: float = _INF
+    ended_s: float = _INF
     accepted: int = 0
     reports: int = 0
     checkins: int = 0
-    status: str = ""
+    status: str = ""  # the status at close; secure aggregation may turn "committed" into "unmasking-failed"
+    parts: list[_Part] = field(default_factory=list)
 
 
 @dataclass
@@ -236,9 +297,22 @@ class _Device:
     working: bool = False
     free_at: float = -_INF
     change: simpy.Event | None = None  # succeeded on any signal change while working
+    waiting: bool = False  # accepted, waiting for the selection's end (after-selection)
+    lost: set[int] = field(default_factory=set)  # required signals that turned off while waiting
     parts: list[_Part] = field(default_factory=list)
     score: float | None = None  # the battery's normal score Z at its last record (None: no look yet)
     score_s: float = 0.0  # the time of that record
+
+
+@dataclass
+class _Clock:
+    """What a running task carries from phase to phase: its battery level and deadlines."""
+
+    level: float
+    crash_at: float
+    os_at: float
+    per_ws: float  # percent per watt-second
+    charge_w: float
 
 
 class _Oracle:
@@ -320,6 +394,9 @@ class _Oracle:
                 chain=[False, False, False, False],
                 capable=bool(fleet.memory_bytes[i] >= work.memory_needed),
             ))
+        # The round protocol's options (docs/fleet-file.md): when tasks start, and secure aggregation.
+        self.after_selection = config.rounds.configure == "after-selection"
+        self.secure = config.rounds.secure_aggregation
         self.round: _Round | None = None
         self.rounds: list[_Round] = []
         self.tasks: list[simpy.Process] = []
@@ -360,6 +437,8 @@ class _Oracle:
         covers = self.covers[(dev.type, dev.region)]
         settled = dev.chain[0]
         on = [dev.chain[1 + s] or (settled and covers[s]) for s in range(len(SIGNAL_NAMES))]
+        if dev.waiting:
+            dev.lost.update(s for s in self.required if not on[s])
         if on != dev.on:
             dev.on = on
             if dev.change is not None and not dev.change.triggered:
@@ -420,6 +499,7 @@ class _Oracle:
         rnd.accepted += 1
         part = _Part(round=rnd.index, device=dev.index, accepted_s=now, battery_start_pct=battery)
         dev.parts.append(part)
+        rnd.parts.append(part)
         dev.working = True
         self.tasks.append(self.env.process(self._task(dev, rnd, part)))
         if rnd.accepted == self.config.rounds.accept_count:
@@ -427,62 +507,87 @@ class _Oracle:
 
     # ------------------------------------------------------------------ the task
 
-    def _task(self, dev: _Device, rnd: _Round, part: _Part):
-        env, rng = self.env, self.rng
+    def _plan(self, i: int, accepted: int) -> _Plan:
+        """Device i's task in a round that accepted ``accepted`` devices, written out from the
+        protocol's arithmetic (docs/fleet-file.md): the local work cap, the update encoding and,
+        when on, secure aggregation's phases. No compute-drift or network disruption (factor 1)."""
         fleet, work = self.fleet, self.config.workload
-        i = dev.index
-        down_s = work.model_size * 8.0 / (fleet.down_mbps[i] * 1e6)
-        padded = math.ceil(int(fleet.samples[i]) / work.batch_size) * work.batch_size
-        train_s = padded * work.epochs * float(fleet.sample_cost_s[i])
-        up_s = work.upload_bytes * 8.0 / (fleet.up_mbps[i] * 1e6)
+        enc = work.update_encoding
+        down_bps, up_bps = float(fleet.down_mbps[i]) * 1e6, float(fleet.up_mbps[i]) * 1e6
+        radio_w, train_w = float(fleet.radio_power_w[i]), float(fleet.train_power_w[i])
+        n_w = work.model_size / 4.0  # the model's weights are 32-bit floats
+        used_n = int(fleet.samples[i])
+        if work.max_examples is not None:
+            used_n = min(used_n, work.max_examples)
+        batch = work.batch_size
+        steps = work.epochs * math.ceil(used_n / batch)
+        if work.max_steps is not None:
+            steps = min(steps, work.max_steps)
+        local_s = steps * batch * float(fleet.sample_cost_s[i])  # the last batch of each epoch is padded
+        encode_s = n_w / 1e6 * (enc.encode_time + (enc.rotation_time if enc.rotation else 0.0))
+        train = _Phase("train", local_s + encode_s, train_w)  # the local steps, then the encoding
+
+        def timed(name: str, fixed: float, down: float, up: float, followed: bool = True) -> _Phase:
+            # A phase's time: its fixed time plus the transfer of its bytes each way.
+            return _Phase(name, fixed + down * 8.0 / down_bps + up * 8.0 / up_bps, radio_w, followed, down, up)
+
+        download = timed("download", 0.0, work.model_size, 0.0)
+        secure, unmask = self.secure, None
+        if secure is None:
+            keep, bits = enc.keep_fraction, enc.bits_per_weight
+            # Sparsified: a 32-bit index per kept weight or a one-bit-per-weight mask, the smaller.
+            index = 0.0 if keep == 1.0 else min(n_w * keep * 4.0, n_w / 8.0)
+            phases = [download, train, timed("upload", 0.0, 0.0, n_w * keep * bits / 8.0 + index)]
+        else:
+            n = accepted
+            shares = (n - 1) * secure.share_bytes  # one share per peer
+            masked = n_w * (enc.bits_per_weight + math.ceil(math.log2(n))) / 8.0  # the sum must not wrap
+            phases = [
+                download,
+                timed("key-advertisement", secure.key_advertisement, 2.0 * secure.key_bytes * n,
+                      2.0 * secure.key_bytes),
+                timed("key-sharing", secure.key_sharing, shares, shares),
+                train,
+                timed("upload", 0.0, 0.0, masked),
+            ]
+            unmask = timed("unmasking", secure.unmasking, 0.0, shares, followed=False)
+        return _Plan(phases, unmask, steps, batch, local_s, weight=float(min(used_n, steps * batch)))
+
+    def _task(self, dev: _Device, rnd: _Round, part: _Part):
+        env = self.env
+        if self.after_selection:
+            dev.waiting, dev.lost = True, set()
+            yield rnd.selected  # reserved, not working, until the selection ends
+            dev.waiting = False
+        part.started_s = env.now
+        plan = part.plan = self._plan(dev.index, rnd.accepted)
+        i, work = dev.index, self.config.workload
         hazard = work.crash_rate / 3600.0
-        start = env.now
-        crash_at = start + rng.expovariate(hazard) if hazard > 0 else _INF
-        os_at = start + work.execution_limit
-        level = part.battery_start_pct
-        per_ws = 100.0 / (3600.0 * float(fleet.battery_wh[i]))  # percent per watt-second
-        charge_w = float(fleet.charge_power_w[i])
-        phases = (("download", down_s, float(fleet.radio_power_w[i])),
-                  ("train", train_s, float(fleet.train_power_w[i])),
-                  ("upload", up_s, float(fleet.radio_power_w[i])))
-        done = {"download": 0.0, "train": 0.0, "upload": 0.0}
+        clock = _Clock(
+            level=part.battery_start_pct,
+            crash_at=env.now + self.rng.expovariate(hazard) if hazard > 0 else _INF,
+            os_at=env.now + work.execution_limit,  # the OS limit counts from the task's start
+            per_ws=100.0 / (3600.0 * float(self.fleet.battery_wh[i])),
+            charge_w=float(self.fleet.charge_power_w[i]),
+        )
         ended_by = ""
-        for name, length, draw_w in phases:
-            phase_end = env.now + length
-            while True:
-                now = env.now
-                slope = ((charge_w if dev.on[_CHARGING] else 0.0) - draw_w) * per_ws
-                cross_at = now + (level - work.min_battery) / -slope if slope < 0 else _INF
-                due = {"phase": phase_end, "execution-limit": os_at, "crash": crash_at, "battery-low": cross_at}
-                first = min(due, key=lambda key: (due[key], key != "phase"))  # ties: completion
-                dev.change = env.event()
-                waits = [env.timeout(max(due[first] - now, 0.0)), dev.change]
-                if name != "upload":
-                    waits.append(rnd.close)
-                fired = yield env.any_of(waits)
-                elapsed = env.now - now
-                done[name] += elapsed
-                level = min(level + slope * elapsed, 100.0)
-                dev.change = None
-                off = [s for s in self.required if not dev.on[s]]
-                if off:
-                    ended_by = SIGNAL_NAMES[off[0]] + "-ended"
+        if rnd.abandoned:
+            ended_by = "stopped"  # the selection failed: no task starts
+        elif dev.lost:
+            # A required signal turned off while it waited: out at its start (the first in
+            # signal order names the cause, as for signals ending at once).
+            ended_by = SIGNAL_NAMES[min(dev.lost)] + "-ended"
+            part.phase = plan.phases[0].name
+            part.done[part.phase] = 0.0
+        else:
+            for phase in plan.phases:
+                # The close stops a device in any phase but the upload (which finishes, late).
+                close = "ignore" if phase.name == "upload" else "stop"
+                ended_by = yield from self._phase(dev, rnd, part, phase, clock, close)
+                if ended_by:
+                    part.phase = phase.name
                     break
-                if waits[0] in fired:
-                    if first == "phase":
-                        break
-                    ended_by = first
-                    break
-                if name != "upload" and rnd.close in fired:
-                    ended_by = "stopped"
-                    break
-                # A signal changed that does not end the task (e.g. the charger): go on.
-            if ended_by:
-                part.phase = name
-                break
-        part.download_done, part.train_done, part.upload_done = done["download"], done["train"], done["upload"]
-        part.ended_s = env.now
-        self._record(dev, level)
+        level = clock.level  # the battery is followed through the upload, not after it
         if ended_by == "stopped":
             part.outcome, part.phase = "stopped", "none"
         elif ended_by:
@@ -494,8 +599,64 @@ class _Oracle:
             rnd.reports += 1
             if rnd.reports == self.config.rounds.target_reports:
                 rnd.target.succeed()
+            if plan.unmask is not None:
+                cause = yield from self._unmasking(dev, rnd, part, plan.unmask, clock)
+                if cause:  # its masked update is in the sum: still on time
+                    part.cause, part.phase = cause, "unmasking"
+                else:
+                    part.survived = True
+        part.ended_s = env.now
+        self._record(dev, level)
         dev.working = False
         dev.free_at = env.now + self.config.rounds.rest
+
+    def _unmasking(self, dev: _Device, rnd: _Round, part: _Part, unmask: _Phase, clock: _Clock):
+        """Secure aggregation after an on-time upload: wait for the round's close, then answer
+        the unmasking for its length; the cause of an interruption, or "" when it answered."""
+        wait = _Phase("wait", _INF, 0.0, followed=False)
+        cause = yield from self._phase(dev, rnd, part, wait, clock, "end")
+        if cause:
+            return cause
+        return (yield from self._phase(dev, rnd, part, unmask, clock, "ignore"))
+
+    def _phase(self, dev: _Device, rnd: _Round, part: _Part, phase: _Phase, clock: _Clock, close: str):
+        """Run ``phase`` until it is done or interrupted: "" when done, else the cause.
+
+        Interruptions: a required signal turning off, the crash, the OS execution limit and,
+        where the battery is followed, its level falling below the minimum (linear: the
+        phase's draw, less the charger whenever the charging signal is on, capped at 100 %).
+        ``close``: "stop" (the round's close stops the phase: "stopped"), "end" (the close
+        ends it: the wait for the close), "ignore".
+        """
+        env, work = self.env, self.config.workload
+        part.done.setdefault(phase.name, 0.0)
+        phase_end = env.now + phase.length
+        while True:
+            now = env.now
+            due = {"phase": phase_end, "execution-limit": clock.os_at, "crash": clock.crash_at}
+            slope = 0.0
+            if phase.followed:
+                slope = ((clock.charge_w if dev.on[_CHARGING] else 0.0) - phase.power_w) * clock.per_ws
+                due["battery-low"] = now + (clock.level - work.min_battery) / -slope if slope < 0 else _INF
+            first = min(due, key=lambda key: (due[key], key != "phase"))  # ties: completion
+            dev.change = env.event()
+            timer = env.timeout(max(due[first] - now, 0.0)) if due[first] < _INF else None
+            waits = [w for w in (timer, dev.change) if w is not None]
+            if close != "ignore":
+                waits.append(rnd.close)
+            fired = yield env.any_of(waits)
+            elapsed = env.now - now
+            part.done[phase.name] += elapsed
+            clock.level = min(clock.level + slope * elapsed, 100.0)
+            dev.change = None
+            off = [s for s in self.required if not dev.on[s]]
+            if off:
+                return SIGNAL_NAMES[off[0]] + "-ended"
+            if timer is not None and timer in fired:
+                return "" if first == "phase" else first
+            if close != "ignore" and rnd.close in fired:
+                return "stopped" if close == "stop" else ""
+            # A signal changed that does not end the task (e.g. the charger): go on.
 
     # ------------------------------------------------------------------ the server
 
@@ -505,22 +666,31 @@ class _Oracle:
         index = 0
         yield env.timeout(-self.server_warmup_s - env.now)  # the first round opens here
         while env.now < self.horizon_s:
-            rnd = _Round(index=index, opened_s=env.now, full=env.event(), target=env.event(), close=env.event())
+            rnd = _Round(index=index, opened_s=env.now, full=env.event(), selected=env.event(),
+                         target=env.event(), close=env.event())
             index += 1
             self.round = rnd
             self.rounds.append(rnd)
             yield env.timeout(rounds.selection_timeout) | rnd.full
             rnd.selecting = False
             rnd.selected_s = env.now
-            if rnd.accepted < rounds.required_reports:
+            enough = rnd.accepted >= rounds.required_reports
+            rnd.abandoned = self.after_selection and not enough
+            rnd.selected.succeed()  # after-selection: every accepted device's task starts now
+            if not enough:
                 rnd.status = "selection-timeout"
             else:
                 if not rnd.target.triggered:
                     yield env.timeout(rounds.report_deadline) | rnd.target
                 rnd.status = "committed" if rnd.reports >= rounds.required_reports else "report-deadline"
             rnd.closed = True
-            rnd.closed_s = env.now
-            rnd.close.succeed()  # devices still downloading or training stop now
+            rnd.closed_s = rnd.ended_s = env.now
+            rnd.close.succeed()  # devices before their upload stop now
+            reporters = [p for p in rnd.parts if p.outcome == "on-time"]
+            if self.secure is not None and reporters:
+                # The unmasking runs [close, close + u_i] for every on-time reporter.
+                rnd.ended_s = rnd.closed_s + max(p.plan.unmask.length for p in reporters)
+                yield env.timeout(rnd.ended_s - env.now)
             yield env.timeout(rounds.aggregation_time)
 
     def run(self) -> OracleResult:
@@ -539,53 +709,25 @@ class _Oracle:
             env.run(until=env.all_of(pending))
         return self._result()
 
+    def _settle(self, rnd: _Round) -> int:
+        """Secure aggregation's verdict once every answer is in: the round's unmasking answers
+        |U|; a round with enough reports but fewer than t = ceil(threshold * accepted) answers
+        is "unmasking-failed". (The threshold is read as the decimal written, so that
+        0.7 x 10 is 7, not the 7.000000000000001 of binary floating point.)"""
+        responses = sum(p.survived for p in rnd.parts)
+        if self.secure is not None and rnd.status == "committed":
+            needed = math.ceil(Fraction(repr(self.secure.threshold)) * rnd.accepted)
+            if responses < needed:
+                rnd.status = "unmasking-failed"
+        return responses
+
     def _result(self) -> OracleResult:
-        fleet, work = self.fleet, self.config.workload
+        responses = {r.index: self._settle(r) for r in self.rounds}
         reported = [r for r in self.rounds if r.opened_s >= 0.0]  # not the warm-up's rounds
         first = reported[0].index if reported else len(self.rounds)
         status = {r.index: r.status for r in self.rounds}
-        rows = []
-        for dev in self.devices:
-            for part in dev.parts:
-                if part.round < first:
-                    continue
-                i = part.device
-                bytes_down = work.model_size * min(part.download_done / self._down_s(i), 1.0)
-                up_s = work.upload_bytes * 8.0 / (fleet.up_mbps[i] * 1e6)
-                bytes_up = work.upload_bytes * min(part.upload_done / up_s, 1.0) if up_s > 0 else 0.0
-                radio_w, train_w = float(fleet.radio_power_w[i]), float(fleet.train_power_w[i])
-                energy_wh = (radio_w * (part.download_done + part.upload_done) + train_w * part.train_done) / 3600.0
-                committed = status[part.round] == "committed"
-                used = part.outcome == "on-time" and committed
-                if used:
-                    waste = "used"
-                elif part.outcome == "dropout":
-                    waste = part.cause
-                elif not committed:
-                    waste = status[part.round]  # the round's status names the waste
-                elif part.outcome == "late":
-                    waste = "late"
-                else:
-                    waste = "stopped"
-                rows.append({
-                    "round": part.round - first,
-                    "device": i,
-                    "device_type": fleet.type_names[dev.type],
-                    "region": fleet.region_names[dev.region],
-                    "accepted_s": part.accepted_s,
-                    "ended_s": part.ended_s,
-                    "outcome": part.outcome,
-                    "dropout_cause": part.cause,
-                    "dropout_phase": part.phase,
-                    "waste_cause": waste,
-                    "used": used,
-                    "compute_s": part.train_done,
-                    "download_bytes": bytes_down,
-                    "upload_bytes": bytes_up,
-                    "energy_wh": energy_wh,
-                    "battery_start_pct": part.battery_start_pct,
-                    "samples": int(fleet.samples[i]),
-                })
+        rows = [self._row(dev, part, status[part.round], first)
+                for dev in self.devices for part in dev.parts if part.round >= first]
         parts = pd.DataFrame(rows, columns=_PART_COLUMNS)
         parts = parts.sort_values(["round", "accepted_s"], kind="stable").reset_index(drop=True)
         rounds = pd.DataFrame(
@@ -594,22 +736,72 @@ class _Oracle:
                 "opened_s": [r.opened_s for r in reported],
                 "selected_s": [r.selected_s for r in reported],
                 "closed_s": [r.closed_s for r in reported],
+                "ended_s": [r.ended_s for r in reported],
                 "accepted": [r.accepted for r in reported],
                 "reports": [r.reports for r in reported],
                 "status": [r.status for r in reported],
                 "checkins": [r.checkins for r in reported],
+                "unmask_responses": [responses[r.index] for r in reported],
             }
         )
-        return OracleResult(rounds=rounds, participations=parts, fleet=fleet)
+        return OracleResult(rounds=rounds, participations=parts, fleet=self.fleet)
 
-    def _down_s(self, i: int) -> float:
-        return self.config.workload.model_size * 8.0 / (self.fleet.down_mbps[i] * 1e6)
+    def _row(self, dev: _Device, part: _Part, status: str, first: int) -> dict:
+        """A participation's row: its work counted up to its end (each phase's bytes in
+        proportion to the time spent in it; energy: each phase's power times that time)."""
+        fleet, plan, i = self.fleet, part.plan, part.device
+        assert plan is not None  # every task is planned when it starts
+        down = up = energy_ws = 0.0
+        for phase in plan.phases + ([plan.unmask] if plan.unmask is not None else []):
+            spent = part.done.get(phase.name)
+            if spent is None:
+                continue  # never entered
+            share = min(spent / phase.length, 1.0) if phase.length > 0 else 1.0
+            down += phase.down_bytes * share
+            up += phase.up_bytes * share
+            energy_ws += phase.power_w * spent
+        train_done = part.done.get("train", 0.0)
+        examples = plan.steps * plan.batch * min(train_done / plan.local_s, 1.0) if plan.local_s > 0 else 0.0
+        committed = status == "committed"
+        used = part.outcome == "on-time" and committed
+        if used:
+            waste = "used"
+        elif part.outcome == "dropout":
+            waste = part.cause
+        elif not committed:
+            waste = status  # the round's status names the waste
+        elif part.outcome == "late":
+            waste = "late"
+        else:
+            waste = "stopped"
+        return {
+            "round": part.round - first,
+            "device": i,
+            "device_type": fleet.type_names[dev.type],
+            "region": fleet.region_names[dev.region],
+            "accepted_s": part.accepted_s,
+            "started_s": part.started_s,
+            "ended_s": part.ended_s,
+            "outcome": part.outcome,
+            "dropout_cause": part.cause,
+            "dropout_phase": part.phase,
+            "waste_cause": waste,
+            "used": used,
+            "compute_s": train_done,
+            "examples_processed": examples,
+            "weight": plan.weight,
+            "download_bytes": down,
+            "upload_bytes": up,
+            "energy_wh": energy_ws / 3600.0,
+            "battery_start_pct": part.battery_start_pct,
+            "samples": int(fleet.samples[i]),
+        }
 
 
 _PART_COLUMNS = [
-    "round", "device", "device_type", "region", "accepted_s", "ended_s", "outcome", "dropout_cause", "dropout_phase",
-    "waste_cause", "used", "compute_s", "download_bytes", "upload_bytes", "energy_wh", "battery_start_pct",
-    "samples",
+    "round", "device", "device_type", "region", "accepted_s", "started_s", "ended_s", "outcome", "dropout_cause",
+    "dropout_phase", "waste_cause", "used", "compute_s", "examples_processed", "weight", "download_bytes",
+    "upload_bytes", "energy_wh", "battery_start_pct", "samples",
 ]
 
 
@@ -618,10 +810,14 @@ def simulate_oracle(config: Config, seed: int = 0) -> OracleResult:
 
     The fleet is :func:`fleetsim.fleet.sample_fleet` of the same seed; every dynamic draw
     comes from the oracle's own stream. Raises ValueError for a configuration it does not
-    model (another selection policy, or disruptions).
+    model (another selection policy, disruptions, pacing, or more than one round in flight).
     """
     if config.selection.policy != "first-come":
         raise ValueError(f"the oracle models first-come selection only, not {config.selection.policy!r}")
     if config.disruptions:
         raise ValueError("the oracle does not model disruptions")
+    if getattr(config.rounds, "pacing", None) is not None:
+        raise ValueError("the oracle does not model pacing")
+    if getattr(config.rounds, "in_flight", 1) != 1:
+        raise ValueError("the oracle models one round at a time, not rounds.in_flight > 1")
     return _Oracle(config, seed).run()

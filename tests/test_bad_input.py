@@ -132,7 +132,7 @@ NUMBERS = [
     ("fleet", "device_types", "tablet", "battery_capacity", "spread"),
     ("fleet", "device_types", "midrange-phone", "samples", "median"),
     ("fleet", "device_types", "tablet", "signals", "idle", "hourly", 3), ("fleet", "regions", "east-asia", "share"),
-    ("workload", "update_compression"), ("workload", "epochs"), ("workload", "batch_size"),
+    ("workload", "update_encoding", "bits_per_weight"), ("workload", "epochs"), ("workload", "batch_size"),
     ("rounds", "target_reports"), ("rounds", "over_selection"), ("rounds", "min_reports"),
 ]
 # Quantities written with a unit (energy, power, bit rate, percentage, hazard).
@@ -152,10 +152,10 @@ DURATIONS = [
     ("fleet", "device_types", "tablet", "signals", "charging", "mean_on"),
     ("fleet", "device_types", "tablet", "sample_cost", "median"),
 ]
-SIZES = [("workload", "model_size"), ("workload", "memory_needed"), ("workload", "update_size"),
+SIZES = [("workload", "model_size"), ("workload", "memory_needed"),
          ("fleet", "device_types", "tablet", "memory", "median")]
 DISRUPTION = [("disruptions", 0, "factor"), ("disruptions", 0, "shift_hours"), ("disruptions", 0, "start")]
-OPTIONAL = {("horizon", "warmup"), ("rounds", "min_reports"), ("workload", "update_size"),
+OPTIONAL = {("horizon", "warmup"), ("rounds", "min_reports"),
             ("workload", "execution_limit")}  # null: no limit
 ALL_LEAVES = NUMBERS + QUANTITIES + DURATIONS + SIZES + DISRUPTION
 
@@ -602,7 +602,7 @@ def test_tiny_window_would_stall_the_selection():
 
 
 def test_non_finite_values_that_used_to_pass(tmp_path):
-    for old, new, where in [("over_selection: 1.3", "over_selection: .inf", "rounds.over_selection"),
+    for old, new, where in [("over_selection: 1.2", "over_selection: .inf", "rounds.over_selection"),
                             ("battery_capacity: {median: 14Wh,", "battery_capacity: {median: .inf,",
                              "battery_capacity.median")]:
         assert where in only_problem(write(tmp_path, BASE_TEXT.replace(old, new)))

@@ -260,7 +260,7 @@ def test_the_example_with_units_is_the_same_configuration_as_before():
         kind["download_rate"]["median"] = down * 10**6  # 1 Mbit/s = 10^6 bit/s (SI prefix M)
         kind["upload_rate"]["median"] = up * 10**6
         kind["battery_level"] = {"charging": {"mean": 72, "sd": 20}, "unplugged": {"mean": 52, "sd": 24}}
-    raw["workload"]["min_battery"], raw["workload"]["crash_rate"] = 30, 0.05
+    raw["workload"]["min_battery"], raw["workload"]["crash_rate"] = 30, 1.0  # bare: %, per hour
     bare = build_config(raw)
     assert bare.model_dump() == new.model_dump()
     assert config_hash(bare) == config_hash(new)

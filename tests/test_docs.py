@@ -7,7 +7,15 @@ import numpy as np
 import pytest
 
 import fleetsim
-from fleetsim.config import example_path, load_config
+from fleetsim.config import example_path
+from fleetsim.config import load_config as _load_config
+
+from . import CLASSIC_ROUNDS
+
+
+def load_config(path, overrides=()):
+    """The example with its classic round protocol (tests.CLASSIC_ROUNDS), then ``overrides``."""
+    return _load_config(path, CLASSIC_ROUNDS + list(overrides))
 
 EXAMPLES = Path(__file__).resolve().parents[1] / "docs" / "examples"
 

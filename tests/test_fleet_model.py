@@ -20,8 +20,10 @@ from scipy import integrate, linalg, special, stats
 import fleetsim
 import fleetsim.server
 from fleetsim.battery import BatteryState
+from fleetsim.battery import battery_crossing as _battery_crossing
+from fleetsim.battery import battery_path as _battery_path
 from fleetsim.chains import SignalState
-from fleetsim.client import Cohort, _battery_crossing, _battery_path, _signal_events
+from fleetsim.client import Cohort, _signal_events
 from fleetsim.config import SIGNALS
 from fleetsim.fleet import sample_fleet
 from fleetsim.signals import (
@@ -688,20 +690,24 @@ def test_long_run_levels_without_memory_are_exactly_the_truncated_beta_law(monke
 
 # Hand-worked battery path: 1 Wh battery (1 J = 1/36 %), download 36 s at 1 W radio, training
 # 720 s at 3 W, upload 72 s at 1 W, charger 9 W; the slope is (charger - draw) / 36 % per s.
-HAND_TIMES = (np.array([36.0]), np.array([720.0]), np.array([72.0]))
+HAND_TIMES = np.array([[36.0], [720.0], [72.0]])  # download, training, upload
+HAND_POWERS = np.array([[1.0], [3.0], [1.0]])
 
 
 def _path(start_pct: float, charging0: bool, changes: list[float]):
-    return _battery_path(HAND_TIMES, np.array([start_pct]), np.array([changes + [np.inf]]), np.array([charging0]),
-                         np.array([3.0]), np.array([1.0]), np.array([9.0]), np.array([1.0]))
+    return _battery_path(np.cumsum(HAND_TIMES, axis=0), HAND_POWERS, np.array([start_pct]),
+                         np.array([changes + [np.inf]]), np.array([charging0]), np.array([9.0]), np.array([1.0]))
 
 
 def _cohort(points, levels, slopes) -> Cohort:
     one = np.zeros(1)
-    return Cohort(device=np.zeros(1, dtype=np.int64), accept_s=one, download_s=HAND_TIMES[0], train_s=HAND_TIMES[1],
-                  upload_s=HAND_TIMES[2], drop_at=np.full(1, np.inf), cause=np.zeros(1, dtype=np.int8),
-                  battery_start_pct=one, radio_w=np.ones(1), train_w=np.full(1, 3.0), model_bytes=1.0,
-                  update_bytes=1.0, paths=None, battery_points=points, battery_levels=levels, battery_slopes=slopes)
+    return Cohort(device=np.zeros(1, dtype=np.int64), accept_s=one, phases=(1, 2, 3), durations=HAND_TIMES,
+                  powers=HAND_POWERS, bytes_down=np.array([1.0, 0.0, 0.0]), bytes_up=np.array([0.0, 0.0, 1.0]),
+                  examples=one, weight=one, local_s=HAND_TIMES[1], drop_at=np.full(1, np.inf),
+                  cause=np.zeros(1, dtype=np.int8), interrupt_at=np.full(1, np.inf),
+                  interrupt_cause=np.zeros(1, dtype=np.int8), unmask_s=one, unmask_bytes=0.0,
+                  battery_start_pct=one, paths=None, battery_points=points, battery_levels=levels,
+                  battery_slopes=slopes)
 
 
 def test_battery_path_charges_when_plugged_in_mid_task_capped_at_full():

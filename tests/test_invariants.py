@@ -23,6 +23,8 @@ from fleetsim.config import SIGNALS
 from fleetsim.events import OUTCOMES
 from fleetsim.policies import BUILTIN_POLICIES
 
+from . import CLASSIC_ROUNDS
+
 EPS = 1e-6  # s; times are sums of floats
 
 
@@ -46,6 +48,11 @@ def scenarios(draw: st.DrawFn) -> tuple[list[str], int]:
         f"workload.requires=[{', '.join(requires)}]",
         f"workload.min_battery={draw(st.sampled_from([0, 20, 50]))}",
         f"workload.crash_rate={draw(st.sampled_from([0, 0.5, 3]))}",
+        # The round protocol's options: when tasks start, pacing, rounds in flight, a work cap.
+        f"rounds.configure={draw(st.sampled_from(['at-acceptance', 'after-selection']))}",
+        f"rounds.pacing={draw(st.sampled_from(['null', 'null', '{margin: 1.0}', '{margin: 1.5, fill_time: 30s}']))}",
+        f"rounds.in_flight={draw(st.integers(1, 3))}",
+        f"workload.max_examples={draw(st.sampled_from(['null', 64]))}",
     ]
     return overrides, draw(st.integers(0, 10_000))
 
@@ -114,7 +121,7 @@ def test_the_invariant_check_catches_a_device_accepted_twice() -> None:
 
 
 def test_the_invariant_check_catches_an_acceptance_during_rest() -> None:
-    result = _run(["fleet.devices=400", "horizon.duration=2h", "rounds.rest=10m"], 4)
+    result = _run(CLASSIC_ROUNDS + ["fleet.devices=400", "horizon.duration=2h", "rounds.rest=10m"], 4)
     _check(result)
     parts = result.participations.sort_values(["device", "accepted_s"]).reset_index(drop=True)
     again = parts["device"].to_numpy()[1:] == parts["device"].to_numpy()[:-1]

@@ -10,7 +10,13 @@ the widened model (settled chain, mean on-durations by local hour, weekend value
 type mixes and overrides) the shares of acceptances by local day kind and part of day, the
 rate of losing a required signal per hour of task by local night and day and by day kind,
 and the dropout causes by part of the local day. The step-by-step chain tables of the two
-are also compared exactly.
+are also compared exactly. For the round protocol's additions (a local work cap and an
+encoded update; tasks configured after the selection; secure aggregation) also the FedAvg
+weights of used reports, the examples processed, the task times from the task's start, the
+waits for the start, the dropouts at the start, the wasted downloads, the bytes uploaded,
+the unmasking times and the unmasking answers per round; each participation's and round's
+figures that the protocol fixes exactly (weights, whole tasks' examples, training times and
+bytes, the threshold's verdict, the round's end) are checked against its arithmetic on both.
 
 Method: independent replications (one run per seed is one observation; Law and Kelton,
 Simulation Modeling and Analysis, chapter 9, from memory). For every share or quantile the
@@ -45,6 +51,7 @@ from scipy import stats
 
 import fleetsim
 from fleetsim.config import build_config
+from fleetsim.fleet import sample_fleet
 
 from .oracle import CHAIN_NAMES, chain_laws, simulate_oracle
 
@@ -167,8 +174,25 @@ def without_type_mix(config: fleetsim.Config) -> fleetsim.Config:
     return _rebuilt(config, change)
 
 
+# The round protocol and workload the scenarios here were calibrated with (the bundled file's
+# values then, docs/validation.md), so that a change of the bundled file's protocol does not
+# move them; each scenario changes what it is for after these. Pacing and rounds in flight
+# are not modelled by the oracle, so they stay off.
+PINNED = [
+    "rounds.over_selection=1.3",
+    "rounds.configure=at-acceptance",
+    "rounds.secure_aggregation=null",
+    "rounds.pacing=null",
+    "rounds.in_flight=1",
+    "workload.update_encoding={bits_per_weight: 8}",
+    "workload.max_examples=null",
+    "workload.max_steps=null",
+    "workload.crash_rate=0.05/h",
+]
+
+
 def config_of(overrides: list[str]) -> fleetsim.Config:
-    return fleetsim.load_config(fleetsim.example_path(), overrides)
+    return fleetsim.load_config(fleetsim.example_path(), PINNED + overrides)
 
 
 @dataclass
@@ -351,6 +375,10 @@ def test_oracle_runs_follow_the_round_protocol(diurnal_oracle):
 def test_oracle_rejects_what_it_does_not_model():
     with pytest.raises(ValueError, match="first-come"):
         simulate_oracle(config_of(DIURNAL + ["selection.policy=lottery"]), 1)
+    with pytest.raises(ValueError, match="pacing"):
+        simulate_oracle(config_of(DIURNAL + ["rounds.pacing={margin: 1.5}"]), 1)
+    with pytest.raises(ValueError, match="in_flight"):
+        simulate_oracle(config_of(DIURNAL + ["rounds.in_flight=2"]), 1)
 
 
 # ----------------------------------------------------- diurnal and widened scenarios: agree
@@ -826,3 +854,306 @@ def test_no_rest_and_fast_checkins_agree():
     for column in ("outcome", "dropout_cause", "waste_cause"):
         assert shares_p(engine, oracle, column) >= ALPHA, column
     assert shares_p(engine, oracle, "device_type", where=used) >= ALPHA
+
+
+# ----------------------------------------- protocol additions: local work cap, update encoding,
+# ----------------------------------------- configure after selection, secure aggregation
+
+# Scenario "capped": "diurnal" with a local work cap and an encoded update (invented values).
+# Samples are lognormal with median 180 (the bundled file), so about a third of the devices
+# hold more than max_examples = 300 and about half more than the 192 examples whose two
+# epochs of batches of 16 reach max_steps = 24. The weight min(n', steps * B) is then
+# min(samples, 300) (24 x 16 = 384 >= 300): max_examples shows in the weights, max_steps in
+# the examples processed and the training time. The update: 8 bits a weight after a rotation,
+# a quarter of the weights kept, 1 s + 2 s per million weights to encode (18 s for the 6
+# million weights of the 24 MB model).
+_ENCODING = ("workload.update_encoding={bits_per_weight: 8, keep_fraction: 0.25, rotation: true, "
+             "encode_time: 1s, rotation_time: 2s}")
+CAPPED = DIURNAL + ["workload.max_examples=300", "workload.max_steps=24", _ENCODING]
+
+# Scenario "after-selection": "diurnal" with every task started once the selection ends.
+AFTER = DIURNAL + ["rounds.configure=after-selection"]
+
+# Scenario "secure": after-selection, the cap and a dense 8-bit rotated update, and secure
+# aggregation with threshold 0.7: a full round accepts n = 16, so t = ceil(0.7 x 16) = 12 =
+# target_reports, and a round that closes at 12 reports fails unless every reporter answers.
+# Reporters wait minutes for the close and then 30 s for the unmasking, exposed to the crash
+# hazard (1/h) and to their signals ending; the execution limit (15 min from the task's
+# start) leaves the wait mostly alone. In the oracle (6 seeds) 27 % of the rounds that got
+# enough reports fail the unmasking (339 of 1,241).
+SECURE = DIURNAL + [
+    "workload.execution_limit=15m",
+    "workload.max_examples=300", "workload.max_steps=24",
+    "workload.update_encoding={bits_per_weight: 8, rotation: true, encode_time: 1s, rotation_time: 2s}",
+    "rounds.configure=after-selection",
+    "rounds.secure_aggregation={threshold: 0.7, unmasking: 30s}",
+]
+
+
+@pytest.fixture(scope="module")
+def capped_oracle() -> Pooled:
+    return run_oracle(config_of(CAPPED))
+
+
+@pytest.fixture(scope="module")
+def capped_engine() -> Pooled:
+    return run_engine(config_of(CAPPED))
+
+
+@pytest.fixture(scope="module")
+def after_oracle() -> Pooled:
+    return run_oracle(config_of(AFTER))
+
+
+@pytest.fixture(scope="module")
+def after_engine() -> Pooled:
+    return run_engine(config_of(AFTER))
+
+
+@pytest.fixture(scope="module")
+def secure_oracle() -> Pooled:
+    return run_oracle(config_of(SECURE))
+
+
+@pytest.fixture(scope="module")
+def secure_engine() -> Pooled:
+    return run_engine(config_of(SECURE))
+
+
+def with_traits(pooled: Pooled) -> pd.DataFrame:
+    """The participations with each device's per-sample cost and link rates, from
+    ``fleetsim.fleet.sample_fleet`` of the row's seed (engine and oracle see that fleet)."""
+    frames = []
+    for seed, parts in pooled.parts.groupby("seed"):
+        fleet = sample_fleet(pooled.config, int(seed))
+        device = parts["device"].to_numpy()
+        frames.append(parts.assign(cost_s=fleet.sample_cost_s[device], up_mbps=fleet.up_mbps[device],
+                                   down_mbps=fleet.down_mbps[device]))
+    return pd.concat(frames)
+
+
+def local_work(samples: np.ndarray, config: fleetsim.Config) -> tuple[np.ndarray, np.ndarray]:
+    """Local steps and FedAvg weight per device, written out from the protocol's arithmetic
+    (docs/fleet-file.md, "Local work"): n' = min(samples, max_examples), steps = min(E
+    ceil(n' / B), max_steps), weight = min(n', steps B)."""
+    work = config.workload
+    used_n = np.minimum(samples, work.max_examples) if work.max_examples is not None else samples
+    steps = work.epochs * np.ceil(used_n / work.batch_size)
+    if work.max_steps is not None:
+        steps = np.minimum(steps, work.max_steps)
+    return steps, np.minimum(used_n, steps * work.batch_size)
+
+
+def assert_local_work(pooled: Pooled, encode_s: float, upload_bytes: float | None) -> None:
+    """Every row's weight, and each full task's examples, training time and bytes, from the
+    arithmetic (the weight on every row; the rest on reports, whose work is whole)."""
+    config, parts = pooled.config, with_traits(pooled)
+    batch = config.workload.batch_size
+    steps, weight = local_work(parts["samples"].to_numpy(), config)
+    np.testing.assert_allclose(parts["weight"], weight, rtol=1e-12)
+    done = (parts["outcome"] == "on-time").to_numpy()
+    np.testing.assert_allclose(parts["examples_processed"][done], (steps * batch)[done], rtol=1e-9)
+    train_s = steps * batch * parts["cost_s"].to_numpy() + encode_s  # the local steps, then the encoding
+    np.testing.assert_allclose(parts["compute_s"][done], train_s[done], rtol=1e-9)
+    np.testing.assert_allclose(parts["download_bytes"][done], config.workload.model_size, rtol=1e-9)
+    if upload_bytes is not None:
+        np.testing.assert_allclose(parts["upload_bytes"][done], upload_bytes, rtol=1e-9)
+    assert (parts["examples_processed"] <= steps * batch + 1e-9).all()
+
+
+def test_capped_work_follows_the_arithmetic(capped_engine, capped_oracle):
+    # Worked example (docs/fleet-file.md arithmetic): 24 MB of 32-bit floats = 6e6 weights;
+    # encoding 6 x (1 + 2) = 18 s; upload 6e6 x 0.25 x 8 / 8 = 1.5e6 bytes plus the index,
+    # min(6e6 x 0.25 x 4, 6e6 / 8) = 0.75e6 bytes (the mask is smaller): 2.25e6 bytes.
+    for pooled in (capped_oracle, capped_engine):
+        assert_local_work(pooled, encode_s=18.0, upload_bytes=2.25e6)
+    parts = capped_oracle.parts
+    assert (parts["weight"] == 300).mean() > 0.2  # max_examples binds often
+    assert ((parts["samples"] > 192) & (parts["samples"] < 300)).mean() > 0.05  # so does max_steps alone
+
+
+def test_capped_scenario_agrees(capped_engine, capped_oracle):
+    engine, oracle = capped_engine, capped_oracle
+    assert shares_p(engine, oracle, "status", rows="rounds") >= ALPHA
+    assert quantiles_p(engine, oracle, committed_durations) >= ALPHA
+    for column in ("outcome", "dropout_cause", "dropout_phase", "waste_cause"):
+        assert shares_p(engine, oracle, column) >= ALPHA, column
+    assert quantiles_p(engine, oracle, report_task_time) >= ALPHA
+    assert quantiles_p(engine, oracle, used_weight) >= ALPHA
+    assert quantiles_p(engine, oracle, examples_processed) >= ALPHA
+    assert welch_p(per_seed(engine, upload_bytes_sent), per_seed(oracle, upload_bytes_sent)) >= ALPHA
+
+
+def report_task_time(rounds: pd.DataFrame, parts: pd.DataFrame) -> np.ndarray:
+    """How long each on-time report's task took, from its start."""
+    reported = parts[parts["outcome"] == "on-time"]
+    return (reported["ended_s"] - reported["started_s"]).to_numpy()
+
+
+def used_weight(rounds: pd.DataFrame, parts: pd.DataFrame) -> np.ndarray:
+    return parts.loc[used(parts), "weight"].to_numpy()
+
+
+def examples_processed(rounds: pd.DataFrame, parts: pd.DataFrame) -> np.ndarray:
+    return parts["examples_processed"].to_numpy()
+
+
+def upload_bytes_sent(rounds: pd.DataFrame, parts: pd.DataFrame) -> float:
+    """Bytes uploaded per participation (its quantiles sit at 0 or a whole update)."""
+    return float(parts["upload_bytes"].mean())
+
+
+def test_cap_comparison_detects_an_engine_without_max_examples(capped_oracle):
+    wrong = run_engine(config_of(DIURNAL + ["workload.max_steps=24", _ENCODING]), WRONG_SEEDS)
+    assert quantiles_p(wrong, capped_oracle, used_weight) < ALPHA
+
+
+def test_cap_comparison_detects_an_engine_without_max_steps(capped_oracle):
+    wrong = run_engine(config_of(DIURNAL + ["workload.max_examples=300", _ENCODING]), WRONG_SEEDS)
+    assert quantiles_p(wrong, capped_oracle, examples_processed) < ALPHA
+
+
+def test_task_time_comparison_detects_an_engine_without_the_encoding_time(capped_oracle):
+    no_time = _ENCODING.replace("encode_time: 1s, rotation_time: 2s", "encode_time: 0s, rotation_time: 0s")
+    wrong = run_engine(config_of(DIURNAL + ["workload.max_examples=300", "workload.max_steps=24", no_time]),
+                       WRONG_SEEDS)
+    assert quantiles_p(wrong, capped_oracle, report_task_time) < ALPHA
+
+
+# ------------------------------------------------------------------ configure after selection
+
+
+def waits(rounds: pd.DataFrame, parts: pd.DataFrame) -> np.ndarray:
+    """How long each accepted device waited for its task to start."""
+    return (parts["started_s"] - parts["accepted_s"]).to_numpy()
+
+
+def dropped_at_start(rounds: pd.DataFrame, parts: pd.DataFrame) -> float:
+    """The share of participations that dropped out as their task started (a required signal
+    ended while they waited)."""
+    return float(((parts["outcome"] == "dropout") & (parts["ended_s"] == parts["started_s"])).mean())
+
+
+def wasted_download_share(rounds: pd.DataFrame, parts: pd.DataFrame) -> float:
+    """The share of the bytes downloaded that no committed round used."""
+    return float(parts.loc[~used(parts), "download_bytes"].sum() / parts["download_bytes"].sum())
+
+
+def test_after_selection_starts_every_task_at_the_selections_end(after_engine, after_oracle):
+    for pooled in (after_oracle, after_engine):
+        parts = pooled.parts.merge(pooled.rounds[["seed", "round", "selected_s", "status"]], on=["seed", "round"])
+        np.testing.assert_allclose(parts["started_s"], parts["selected_s"], rtol=0, atol=1e-6)
+        assert (parts["started_s"] >= parts["accepted_s"]).all()
+        # An abandoned selection starts no task: no work, stopped at its start.
+        abandoned = parts[parts["status"] == "selection-timeout"]
+        assert len(abandoned) > 0
+        assert (abandoned["outcome"] == "stopped").all()
+        assert (abandoned["ended_s"] == abandoned["started_s"]).all()
+        for column in ("compute_s", "download_bytes", "upload_bytes", "energy_wh", "examples_processed"):
+            assert (abandoned[column] == 0).all(), column
+    assert dropped_at_start(after_oracle.rounds, after_oracle.parts) > 0.005  # the scenario exercises it
+
+
+def test_after_selection_scenario_agrees(after_engine, after_oracle):
+    engine, oracle = after_engine, after_oracle
+    assert shares_p(engine, oracle, "status", rows="rounds") >= ALPHA
+    assert quantiles_p(engine, oracle, committed_durations) >= ALPHA
+    assert quantiles_p(engine, oracle, selection_times) >= ALPHA
+    for column in ("outcome", "dropout_cause", "dropout_phase", "waste_cause"):
+        assert shares_p(engine, oracle, column) >= ALPHA, column
+    assert shares_p(engine, oracle, "device_type", where=used) >= ALPHA
+    assert quantiles_p(engine, oracle, waits) >= ALPHA
+    assert quantiles_p(engine, oracle, report_task_time) >= ALPHA
+    for value in (dropped_at_start, wasted_download_share):
+        assert welch_p(per_seed(engine, value), per_seed(oracle, value)) >= ALPHA, value.__name__
+
+
+def test_after_selection_comparison_detects_tasks_started_at_acceptance(after_oracle):
+    # The engine configuring each device at its acceptance: tasks of a round that then times
+    # out run (and download) until its close, and rounds close sooner.
+    wrong = run_engine(config_of(DIURNAL), WRONG_SEEDS)
+    assert welch_p(per_seed(wrong, wasted_download_share), per_seed(after_oracle, wasted_download_share)) < ALPHA
+    assert quantiles_p(wrong, after_oracle, committed_durations) < ALPHA
+
+
+# ------------------------------------------------------------------------- secure aggregation
+
+
+def answered(parts: pd.DataFrame) -> pd.Series:
+    """Reporters that answered the unmasking (on time, never interrupted)."""
+    return (parts["outcome"] == "on-time") & (parts["dropout_cause"] == "none")
+
+
+def unmasking_times(rounds: pd.DataFrame, parts: pd.DataFrame) -> np.ndarray:
+    """How long each round ran past its close (the unmasking), among rounds with reports."""
+    chosen = rounds[rounds["reports"] > 0]
+    return (chosen["ended_s"] - chosen["closed_s"]).to_numpy()
+
+
+def responses_per_round(rounds: pd.DataFrame, parts: pd.DataFrame) -> np.ndarray:
+    chosen = rounds[rounds["status"].isin(["committed", "unmasking-failed"])]
+    return chosen["unmask_responses"].to_numpy(dtype=float)
+
+
+def test_secure_rounds_follow_the_protocol(secure_engine, secure_oracle):
+    """Byte counts of whole participations and the rounds' verdicts, from the protocol's
+    arithmetic (docs/fleet-file.md, "Secure aggregation"): with n accepted, a device that
+    answered moves 24e6 + 2 x 32 n + 64 (n - 1) bytes down and 2 x 32 + 2 x 64 (n - 1) +
+    6e6 (8 + ceil(log2 n)) / 8 up; the round commits with enough reports and at least
+    ceil(0.7 n) answers; it ends at its close plus the longest unmasking of its reporters
+    (30 s + 64 (n - 1) bytes up)."""
+    for pooled in (secure_oracle, secure_engine):
+        rounds = pooled.rounds
+        parts = with_traits(pooled).merge(rounds[["seed", "round", "accepted", "closed_s"]], on=["seed", "round"])
+        n = parts["accepted"].to_numpy(dtype=float)
+        down = 24e6 + 2 * 32 * n + 64 * (n - 1)
+        up = 2 * 32 + 2 * 64 * (n - 1) + 6e6 * (8 + np.ceil(np.log2(n))) / 8
+        whole = answered(parts).to_numpy()
+        np.testing.assert_allclose(parts["download_bytes"][whole], down[whole], rtol=1e-9)
+        np.testing.assert_allclose(parts["upload_bytes"][whole], up[whole], rtol=1e-9)
+        unmask_s = 30.0 + 64 * (n - 1) * 8 / (parts["up_mbps"].to_numpy() * 1e6)
+        np.testing.assert_allclose(parts["ended_s"][whole], (parts["closed_s"] + unmask_s)[whole], rtol=0, atol=1e-6)
+        reporters = parts[parts["outcome"] == "on-time"].assign(unmask_s=unmask_s[parts["outcome"] == "on-time"])
+        longest = reporters.groupby(["seed", "round"])["unmask_s"].max()
+        by_round = rounds.set_index(["seed", "round"])
+        np.testing.assert_allclose((by_round["ended_s"] - by_round["closed_s"]).reindex(longest.index), longest,
+                                   rtol=0, atol=1e-6)
+        counted = parts[whole].groupby(["seed", "round"]).size().reindex(by_round.index, fill_value=0)
+        assert (by_round["unmask_responses"] == counted).all()
+        enough = by_round["status"].isin(["committed", "unmasking-failed"])
+        needed = np.ceil(0.7 * by_round["accepted"] - 1e-9)
+        failed = enough & (by_round["unmask_responses"] < needed)
+        assert (by_round.loc[failed, "status"] == "unmasking-failed").all()
+        assert (by_round.loc[enough & ~failed, "status"] == "committed").all()
+        # Unmasking drops keep their report (on time) and name the phase.
+        late_drops = parts[(parts["outcome"] == "on-time") & (parts["dropout_cause"] != "none")]
+        assert (late_drops["dropout_phase"] == "unmasking").all()
+        assert len(late_drops) > 0
+    counts = secure_oracle.rounds["status"].value_counts()
+    assert counts.get("unmasking-failed", 0) >= 0.2 * counts.get("committed", 0)  # failures are common
+
+
+def test_secure_scenario_agrees(secure_engine, secure_oracle):
+    engine, oracle = secure_engine, secure_oracle
+    assert shares_p(engine, oracle, "status", rows="rounds") >= ALPHA
+    assert quantiles_p(engine, oracle, committed_durations) >= ALPHA
+    assert quantiles_p(engine, oracle, unmasking_times) >= ALPHA
+    assert quantiles_p(engine, oracle, responses_per_round) >= ALPHA
+    for column in ("outcome", "dropout_cause", "dropout_phase", "waste_cause"):
+        assert shares_p(engine, oracle, column) >= ALPHA, column
+    assert quantiles_p(engine, oracle, report_task_time) >= ALPHA
+    assert welch_p(per_seed(engine, upload_bytes_sent), per_seed(oracle, upload_bytes_sent)) >= ALPHA
+
+
+def test_secure_comparison_detects_an_engine_that_never_fails_the_threshold(secure_oracle):
+    # Threshold 0.1: t = ceil(1.6) = 2 answers, which a round with enough reports all but
+    # always has.
+    wrong = run_engine(config_of(SECURE + ["rounds.secure_aggregation={threshold: 0.1, unmasking: 30s}"]),
+                       WRONG_SEEDS)
+    assert shares_p(wrong, secure_oracle, "status", rows="rounds") < ALPHA
+
+
+def test_secure_comparison_detects_a_shorter_unmasking(secure_oracle):
+    wrong = run_engine(config_of(SECURE + ["rounds.secure_aggregation={threshold: 0.7, unmasking: 20s}"]),
+                       WRONG_SEEDS)
+    assert quantiles_p(wrong, secure_oracle, unmasking_times) < ALPHA

@@ -4,9 +4,17 @@ import numpy as np
 import pytest
 
 import fleetsim
-from fleetsim.config import example_path, load_config
+from fleetsim.config import example_path
+from fleetsim.config import load_config as _load_config
 from fleetsim.errors import ConfigError
 from fleetsim.policies import BUILTIN_POLICIES, SelectionPolicy, make_policy
+
+from . import CLASSIC_ROUNDS
+
+
+def load_config(path, overrides=()):
+    """The example with its classic round protocol (tests.CLASSIC_ROUNDS), then ``overrides``."""
+    return _load_config(path, CLASSIC_ROUNDS + list(overrides))
 
 # Short rests keep the eligible pool large, so policies have a real choice to make.
 SMALL = ["fleet.devices=40000", "horizon.duration=1d", "rounds.rest=2h"]

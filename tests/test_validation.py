@@ -23,12 +23,16 @@ from fleetsim.fleet import sample_fleet
 from fleetsim.metrics import gini
 from fleetsim.signals import CHAINS, STEP_S, build_signal_tables, local_hours
 
+from . import CLASSIC_ROUNDS
+
 TYPES = ("budget-phone", "midrange-phone", "flagship-phone", "tablet")
 ALPHA = 1e-3  # a goodness-of-fit test with a true model fails with probability 0.1%
 
 
 def config_of(overrides: list[str]) -> fleetsim.Config:
-    return fleetsim.load_config(fleetsim.example_path(), overrides)
+    # The closed forms here are built on tasks that start at acceptance, an unpaced server and
+    # uncapped training (CLASSIC_ROUNDS); each case sets what it is about after that.
+    return fleetsim.load_config(fleetsim.example_path(), CLASSIC_ROUNDS + overrides)
 
 
 def every_type(key: str, value: object) -> list[str]:
@@ -48,7 +52,7 @@ FIXED_TASK = [
     "workload.memory_needed=0",
     "workload.execution_limit=1d",
     "workload.model_size=1MB",
-    "workload.update_size=1MB",
+    "workload.update_encoding.bits_per_weight=32",  # the update is the whole model, 1 MB
     "workload.batch_size=1",
     "workload.epochs=1",
     *every_type("samples", 300),
@@ -156,7 +160,7 @@ ORDER = [
     "workload.execution_limit=1d",
     "workload.crash_rate=0",
     "workload.model_size=1MB",
-    "workload.update_size=1MB",
+    "workload.update_encoding.bits_per_weight=32",  # the update is the whole model, 1 MB
     "workload.batch_size=1",
     "workload.epochs=1",
     *every_type("samples", 100),

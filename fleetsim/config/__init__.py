@@ -8,7 +8,8 @@ the bad value and what was expected.
 Modules, bottom up: ``fields`` (quantity types, traits, the strict base that refuses
 renamed keys), ``yamltext`` (the YAML reader), ``devices`` (device types, signals, the
 settled state, regional adjustments), ``fleetspec`` (regions, the fleet mix, merged
-(type, region) specs), ``models`` (the other sections of a file),
+(type, region) specs), ``protocol`` (update encoding, secure aggregation, pacing),
+``models`` (the other sections of a file),
 ``loading`` (overrides, validation, error lines, hash, schema), ``memory`` (the estimate
 that refuses a run too large for the machine).
 """
@@ -47,6 +48,7 @@ from .models import (
     Selection,
     Workload,
 )
+from .protocol import WEIGHT_BYTES, Pacing, SecureAggregation, UpdateEncoding
 from .yamltext import MAX_DEPTH, MAX_FILE_BYTES, MAX_NODES, load_yaml_text, read_yaml, structure_problem
 
 __all__ = [
@@ -77,7 +79,11 @@ __all__ = [
     "Region",
     "FleetSpec",
     "Workload",
+    "UpdateEncoding",
+    "WEIGHT_BYTES",
     "RoundSettings",
+    "SecureAggregation",
+    "Pacing",
     "Selection",
     "Horizon",
     "Disruption",

@@ -131,6 +131,9 @@ RENAMED_KEYS: dict[str, dict[str, tuple[str, str]]] = {
     },
     "Workload": {
         "crash_per_hour": ("crash_rate", "a hazard such as 0.05/h"),
+        "update_compression": ("update_encoding.bits_per_weight",
+                               "bits per weight such as 8 (a quarter of the model's 32-bit floats)"),
+        "update_size": ("update_encoding", "bits per weight and a kept fraction; the bytes follow from the model"),
     },
 }
 

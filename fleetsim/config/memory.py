@@ -61,7 +61,7 @@ def _typical_task_s(config: Config) -> float:
     times = []
     for kind in config.fleet.device_types.values():
         samples = max(1.0, kind.samples.median)
-        train = math.ceil(samples / work.batch_size) * work.batch_size * work.epochs * kind.sample_cost.median
+        train = float(work.local_work(samples)[0]) * kind.sample_cost.median + work.encode_s
         transfer = (work.model_size / kind.download_rate.median + work.upload_bytes / kind.upload_rate.median) * 8
         times.append((train + transfer, kind.share))
     times.sort()

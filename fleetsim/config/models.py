@@ -7,6 +7,7 @@ import math
 from datetime import datetime, timezone
 from typing import Any, Literal
 
+import numpy as np
 from pydantic import (
     Field,
     field_serializer,
@@ -32,6 +33,7 @@ from .fields import (
     _Strict,
 )
 from .fleetspec import FleetSpec, name_problem
+from .protocol import Pacing, SecureAggregation, UpdateEncoding
 from .yamltext import structure_problem
 
 
@@ -39,10 +41,13 @@ class Workload(_Strict):
     """What one participation asks of a device."""
 
     model_size: Size = Field(gt=0, description="model download size")
-    update_size: Size | None = Field(default=None, gt=0, description="update upload size")
-    update_compression: Real = Field(default=1.0, ge=1.0, description="used when update_size is unset")
+    update_encoding: UpdateEncoding = UpdateEncoding()
     epochs: Count = Field(default=1, ge=1, le=1_000_000)
     batch_size: Count = Field(default=32, ge=1, le=1_000_000_000)
+    # Unset or null: no cap. Local work per round is epochs passes over at most max_examples
+    # examples, in batches of batch_size, at most max_steps batches (docs/fleet-file.md).
+    max_examples: Count | None = Field(default=None, ge=1, le=1_000_000_000)
+    max_steps: Count | None = Field(default=None, ge=1, le=1_000_000_000)
     memory_needed: Size = Field(default=0.0, ge=0)
     requires: list[SignalName] = Field(default_factory=lambda: list(_ALL_SIGNALS))
     min_battery: Percentage = Field(default=0.0, ge=0, le=100, description="battery level, %")
@@ -67,7 +72,25 @@ class Workload(_Strict):
 
     @property
     def upload_bytes(self) -> float:
-        return self.update_size if self.update_size is not None else self.model_size / self.update_compression
+        """Bytes of an encoded update (without secure aggregation's masking)."""
+        return self.update_encoding.upload_bytes(self.model_size)
+
+    def local_work(self, samples: Any) -> tuple[Any, Any]:
+        """Local work per round of a device holding ``samples`` examples (number or array):
+        examples processed (steps x batch size; the last batch of an epoch is padded to full
+        size) and the FedAvg weight (the distinct examples trained on). Epochs pass over
+        min(samples, ``max_examples``) examples, at most ``max_steps`` batches in all."""
+        used = samples if self.max_examples is None else np.minimum(samples, self.max_examples)
+        steps = self.epochs * np.ceil(np.divide(used, self.batch_size))
+        if self.max_steps is not None:
+            steps = np.minimum(steps, self.max_steps)
+        processed = steps * self.batch_size
+        return processed, np.minimum(used, processed) * 1.0
+
+    @property
+    def encode_s(self) -> float:
+        """On-device encoding time of an update, s."""
+        return self.update_encoding.encode_s(self.model_size)
 
 
 MIN_CHECKIN_S = 1.0
@@ -87,6 +110,14 @@ class RoundSettings(_Strict):
     aggregation_time: Duration = Field(default=30.0, ge=0)
     rest: Duration = Field(default=0.0, ge=0)
     checkin_every: Duration = Field(ge=MIN_CHECKIN_S)
+    # When an accepted device's task starts: at its acceptance, or once the selection is
+    # complete (the server then configures the whole cohort at once).
+    configure: Literal["at-acceptance", "after-selection"] = "at-acceptance"
+    secure_aggregation: SecureAggregation | None = None
+    pacing: Pacing | None = None
+    # Rounds open at once: above 1 the next round's selection opens as soon as the current
+    # round's selection ends, while it still collects reports.
+    in_flight: Count = Field(default=1, ge=1, le=64)
 
     @model_validator(mode="after")
     def _min_le_target(self) -> RoundSettings:
@@ -102,6 +133,22 @@ class RoundSettings(_Strict):
                 _at("selection_timeout", f"selection_timeout + aggregation_time must be at least "
                     f"{MIN_CYCLE_S:g}s so that simulated time moves on (got {cycle:g}s)")
             )
+        pacing = self.pacing
+        if pacing is not None and pacing.min_wait is not None and pacing.min_wait > pacing.max_wait:
+            raise ValueError(_at("pacing.min_wait", f"must not exceed pacing.max_wait ({pacing.max_wait:g}s) "
+                                 f"(got {pacing.min_wait:g}s)"))
+        secure = self.secure_aggregation
+        if secure is not None:
+            if self.configure != "after-selection":
+                raise ValueError(_at("configure", "secure aggregation shares keys within the whole cohort, "
+                                     "so tasks must start once it is known: set configure: after-selection "
+                                     f"(got {_show(self.configure)})"))
+            if secure.needed(self.accept_count) > self.target_reports:
+                raise ValueError(_at("secure_aggregation.threshold", (
+                    f"every round would fail: the unmasking needs {secure.needed(self.accept_count)} answers "
+                    f"(ceil({secure.threshold:g} x {self.accept_count} accepted)) but only reports answer it, "
+                    f"at most target_reports = {self.target_reports}; lower the threshold or the over-selection "
+                    f"(got {secure.threshold:g})")))
         return self
 
     @property
@@ -204,6 +251,11 @@ class Config(_Strict):
                             f"disruptions.{i}.{key}.{j}",
                             f"unknown name {_show(name)}; expected one of {', '.join(known)}",
                         ))
+        keep = self.workload.update_encoding.keep_fraction
+        if self.rounds.secure_aggregation is not None and keep < 1.0:
+            raise ValueError(_at("workload.update_encoding.keep_fraction", (
+                "secure aggregation masks a dense update, so a sparsified one cannot be summed under it: "
+                f"use keep_fraction 1 or drop rounds.secure_aggregation (got {keep:g})")))
         _check_span(self)
         return self
 
