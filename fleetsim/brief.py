@@ -25,6 +25,26 @@ def _ended_by(ended_by: dict[str, int]) -> str:
             + (f", {ended_by['server_outage']} by a server outage" if ended_by["server_outage"] else ""))
 
 
+def _overlap(rounds: dict[str, Any]) -> str:
+    """A note that rounds overlapped (pipelined rounds: a duration is not the time between rounds)."""
+    if (rounds.get("open_peak") or 1) <= 1:
+        return ""
+    mean = "" if rounds.get("open_mean") is None else f", {rounds['open_mean']:.2f} on average"
+    return f"; rounds overlap (up to {rounds['open_peak']} open at once{mean})"
+
+
+def _load_line(load: dict[str, Any] | None) -> str:
+    """Check-ins per second (mean, peak hour) and the share turned away, with their basis."""
+    if not load or load.get("checkins_per_s_peak") is None:
+        return ""
+    basis = "counted" if load["basis"] == "counted" else "estimated from the census"
+    held = (f"; {load['rounds_held']} rounds held, {_pct(load['held_share'])} of the horizon"
+            if load.get("rounds_held") else "")
+    return (f"server load ({basis}): {load['checkins_per_s_mean']:.3g} check-ins/s on average, peak "
+            f"{load['checkins_per_s_peak']:.3g}/s in the hour from {load['peak_hour_utc']}; "
+            f"{_pct(load['turned_away_share'])} turned away" + held)
+
+
 def render_summary(summary: dict[str, Any]) -> str:
     """The short plain-text summary ``fleetsim run`` prints."""
     r, w, b = summary["rounds"], summary["waste"], summary["bias"]
@@ -37,10 +57,14 @@ def render_summary(summary: dict[str, Any]) -> str:
         + _ended_by(r["ended_by"]),
     ]
     if d["p50"] is not None:
-        lines.append(f"  committed round duration p50 {d['p50']:.0f}s, p90 {d['p90']:.0f}s, p99 {d['p99']:.0f}s")
+        lines.append(f"  committed round duration p50 {d['p50']:.0f}s, p90 {d['p90']:.0f}s, p99 {d['p99']:.0f}s"
+                     + _overlap(r))
+    load = _load_line(summary.get("server_load"))
+    if load:
+        lines.append(load)
     lines.append(
         f"straggler waste: {_pct(w['compute_fraction'])} of compute, {_pct(w['bytes_fraction'])} of bytes, "
-        f"{_pct(w['energy_fraction'])} of energy"
+        f"{_pct(w['energy_fraction'])} of energy, {_pct(w['examples_fraction'])} of examples processed"
     )
     causes = sorted(w["by_cause"].items(), key=lambda kv: -kv[1]["compute_s"])[:4]
     if causes:
@@ -79,7 +103,8 @@ def summary_html(summary: dict[str, Any]) -> str:
         f"rounds committed {r['committed']} of {r['attempted']} ({r['committed_per_hour']:.2f}/h); "
         f"{html.escape(_ended_by(r['ended_by']))}<br>"
         f"straggler waste: compute {_pct(w['compute_fraction'])}, bytes {_pct(w['bytes_fraction'])}, "
-        f"energy {_pct(w['energy_fraction'])}; coverage {_pct(b['coverage'])}<br>"
+        f"energy {_pct(w['energy_fraction'])}, examples {_pct(w['examples_fraction'])}; "
+        f"coverage {_pct(b['coverage'])}<br>"
         "<table><tr><th>device type</th><th>fleet share</th><th>report share</th><th>ratio</th></tr>"
         f"{rows}</table><small>{html.escape(s['caution'])}</small></div>"
     )

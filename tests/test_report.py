@@ -385,20 +385,22 @@ def test_survival_tables_match_lifelines(run_dir: Path) -> None:
     # tables/task_survival*.csv against lifelines' Kaplan-Meier fit of the event log, per
     # device type and for the whole fleet; the page's minute table is the CSV as it stands.
     lifelines = pytest.importorskip("lifelines")
-    events = pd.read_parquet(run_dir / "events.parquet", columns=["device_type", "outcome", "accepted_s", "ended_s"])
+    events = pd.read_parquet(run_dir / "events.parquet", columns=["device_type", "outcome", "started_s", "ended_s"])
     steps, minutes = read_table(run_dir, "task_survival"), read_table(run_dir, "task_survival_by_minute")
     steps["device_type"] = steps["device_type"].fillna("")
     minutes["device_type"] = minutes["device_type"].fillna("")
     groups = [(str(n), "device_type", g) for n, g in events.groupby("device_type", observed=True)]
     groups.append(("", "all", events))
     for name, scope, group in groups:
-        duration = (group["ended_s"] - group["accepted_s"]).to_numpy()
+        duration = (group["ended_s"] - group["started_s"]).to_numpy()
         dropped = (group["outcome"] == "dropout").to_numpy()
         reference = lifelines.KaplanMeierFitter().fit(duration, dropped)
         for table in (steps, minutes):
             rows = table[(table["scope"] == scope) & (table["device_type"] == name)]
             shown = rows[rows["survival"].notna()]
-            assert len(shown) > 0, (scope, name)
+            if not len(shown):  # a group whose tasks all end within the first minute: nothing to show
+                assert table is minutes and (rows["at_risk"] < 10).all(), (scope, name)
+                continue
             t = shown["time_s"].to_numpy(float)
             assert np.allclose(shown["survival"], reference.survival_function_at_times(t).to_numpy(), atol=1e-10)
             ci = reference.confidence_interval_.reindex(np.union1d(reference.timeline, t)).ffill().loc[t].to_numpy()
@@ -419,11 +421,11 @@ def test_survival_tables_match_lifelines(run_dir: Path) -> None:
 
 def test_kaplan_meier_matches_lifelines(run_dir: Path) -> None:
     lifelines = pytest.importorskip("lifelines")
-    events = pd.read_parquet(run_dir / "events.parquet", columns=["device_type", "outcome", "accepted_s", "ended_s"])
+    events = pd.read_parquet(run_dir / "events.parquet", columns=["device_type", "outcome", "started_s", "ended_s"])
     bands = frame(parse(page(run_dir)), "survival-bands")
     checked = 0
     for name, group in events.groupby("device_type", observed=True):
-        duration = (group["ended_s"] - group["accepted_s"]).to_numpy()
+        duration = (group["ended_s"] - group["started_s"]).to_numpy()
         dropped = (group["outcome"] == "dropout").to_numpy()
         reference = lifelines.KaplanMeierFitter().fit(duration, dropped)
         timeline = reference.survival_function_.index.to_numpy()
@@ -435,7 +437,10 @@ def test_kaplan_meier_matches_lifelines(run_dir: Path) -> None:
         # The report's table of the curve, minute by minute, equals the reference too.
         rows = bands[bands["device_type"] == name]
         shown = rows[rows["survival"] != ""]
-        assert len(shown) > 0
+        if not len(shown):  # every task of the type ended within its first minute (under 10 at risk)
+            assert (numbers(rows["at_risk"]) < 10).all(), name
+            checked += 1
+            continue
         t = numbers(shown["minutes"]) * 60
         ref_s = reference.survival_function_at_times(t).to_numpy()
         assert np.allclose(numbers(shown["survival"]), ref_s, rtol=0, atol=1e-10)

@@ -1,4 +1,5 @@
-"""Rounds, straggler waste and participation bias, computed from a run's record only.
+"""Rounds, straggler waste, participation bias and the unmasking of secure aggregation, computed
+from a run's record only.
 
 Definitions are in docs/metrics.md; every figure in summary.json and the report comes from
 the tables built here (one source of truth). The statistics themselves are pure functions
@@ -29,10 +30,11 @@ from ..events import json_key
 from ..survival import task_durations, task_survival_tables
 from ..units import format_instant
 from .bias import BIAS_TABLES, bias_tables, participation_counts
-from .load import hourly_table
+from .load import hourly_table, rounds_open, server_load_part
 from .rounds import closed_per_hour, round_frame
+from .secure import secure_part, unmasking_by_accepted
 from .summary import bias_map, clean, participations_part, rounds_part, waste_part
-from .waste import device_cost, dropout_table, waste_by_cause, waste_by_device_type, waste_sums
+from .waste import device_cost, dropout_table, labelled_frame, waste_by_cause, waste_by_device_type, waste_sums
 
 if TYPE_CHECKING:
     from ..record import RunRecord
@@ -81,9 +83,10 @@ def compute_metrics(record: RunRecord) -> Metrics:
     hours = horizon_s / 3600.0
     n_hours = int(math.ceil(hours))
     type_names, region_names = list(fleet.type_names), list(fleet.region_names)
-    rounds = round_frame(record.rounds, start)
+    secure = config.rounds.secure_aggregation
+    rounds = round_frame(record.rounds, start, secure)
 
-    labelled = parts.assign(bytes=parts["download_bytes"] + parts["upload_bytes"])
+    labelled = labelled_frame(parts)
     wasted = labelled[~labelled["used"]]
     by_cause = waste_by_cause(wasted)
     by_type = waste_by_device_type(labelled, wasted, type_names)
@@ -95,8 +98,7 @@ def compute_metrics(record: RunRecord) -> Metrics:
     chi = chi_square_table(bias)
 
     closed = closed_per_hour(rounds, n_hours)
-    hourly, by_region, peak = hourly_table(start, n_hours, closed, census, parts, region_names,
-                                           config.rounds.checkin_every)
+    hourly, by_region, peak = hourly_table(start, horizon_s, closed, record, rounds, region_names)
     survival, survival_minutes = task_survival_tables(parts, type_names)
 
     tables = {
@@ -114,9 +116,17 @@ def compute_metrics(record: RunRecord) -> Metrics:
         "lorenz": lorenz_table(counts),
         "task_survival": survival,
         "task_survival_by_minute": survival_minutes,
+        "unmasking_by_accepted": unmasking_by_accepted(rounds, secure),
     }
     selection = rounds.loc[rounds["status"] != "selection-timeout", "selection_s"].to_numpy(dtype=float)
+    open_peak, open_mean = rounds_open(rounds, horizon_s)
     round_extra = {
+        "configure": config.rounds.configure,
+        "secure_aggregation": secure is not None,
+        "pacing": config.rounds.pacing is not None,
+        "in_flight": config.rounds.in_flight,
+        "open_peak": open_peak,
+        "open_mean": open_mean,
         "selection_at_timeout": share_at_limit(selection, float(config.rounds.selection_timeout)),
         "eligible_correlation": correlation(closed["committed"], hourly["eligible"].to_numpy()),
     }
@@ -133,11 +143,13 @@ def compute_metrics(record: RunRecord) -> Metrics:
         "participations": participations_part(labelled, used, task_durations(parts)[0]),
         "waste": waste_part(waste_sums(labelled), waste_sums(wasted), by_cause, by_type),
         "bias": _bias_part(bias, chi, counts, reports_per_device),
+        "secure_aggregation": secure_part(rounds, secure, config.rounds.accept_count, config.workload),
         "load": {
             "peak_working": int(peak),
-            "mean_working": mean_working(parts["accepted_s"].to_numpy(), parts["ended_s"].to_numpy(), horizon_s),
+            "mean_working": mean_working(parts["started_s"].to_numpy(), parts["ended_s"].to_numpy(), horizon_s),
             "checkins_per_s_peak_hour": float(hourly["checkins_per_s"].max()) if n_hours else None,
         },
+        "server_load": server_load_part(record, hourly, rounds, horizon_s),
         "caution": CAUTION,
     }
     return Metrics(summary=clean(summary), tables=tables)

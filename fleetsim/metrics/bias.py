@@ -57,7 +57,8 @@ def _bias_table(
     accepted = np.bincount(part_group, minlength=k).astype(float)
     used = parts["used"].to_numpy()
     reports = np.bincount(part_group[used], minlength=k).astype(float)
-    weight = np.bincount(part_group[used], weights=parts["samples"].to_numpy()[used], minlength=k)
+    # FedAvg weight of each used report: the distinct examples it trained on (capped), not the data size.
+    weight = np.bincount(part_group[used], weights=parts["weight"].to_numpy(dtype=float)[used], minlength=k)
     covered = np.bincount(group_of_device[reports_per_device > 0], minlength=k).astype(float)
     fleet_share = _share(devices)
     report_share = _share(reports)

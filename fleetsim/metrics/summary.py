@@ -11,7 +11,7 @@ import pandas as pd
 from ..analysis import quantiles
 from ..events import OUTCOMES, ROUND_STATUS, json_key
 
-__all__ = ["clean", "rounds_part", "participations_part", "waste_part", "bias_map"]
+__all__ = ["clean", "rounds_part", "round_dropout_shares", "participations_part", "waste_part", "bias_map"]
 
 BIAS_FIGURES = ["fleet_share", "eligible_share", "accepted_share", "report_share", "weight_share",
                 "representation_ratio", "ratio_low", "ratio_high", "never_share"]
@@ -37,7 +37,7 @@ def _fraction(part: float, whole: float) -> float:
     return part / whole if whole > 0 else float("nan")
 
 
-def rounds_part(rounds: pd.DataFrame, hours: float, extra: dict[str, float]) -> dict[str, Any]:
+def rounds_part(rounds: pd.DataFrame, hours: float, extra: dict[str, Any]) -> dict[str, Any]:
     """``rounds``: counts by status, rate and duration percentiles; ``extra`` figures appended."""
     counts = rounds["status"].value_counts()
     committed = rounds[rounds["status"] == "committed"]
@@ -53,9 +53,20 @@ def rounds_part(rounds: pd.DataFrame, hours: float, extra: dict[str, float]) -> 
     }
 
 
+def round_dropout_shares(labelled: pd.DataFrame) -> np.ndarray:
+    """Per round that accepted any device: its dropouts / the devices it accepted."""
+    codes, _ = pd.factorize(labelled["round"].to_numpy())
+    accepted = np.bincount(codes).astype(float)
+    dropped = np.bincount(codes, weights=(labelled["outcome"] == "dropout").to_numpy(dtype=float),
+                          minlength=accepted.size)
+    return dropped / accepted
+
+
 def participations_part(labelled: pd.DataFrame, used: np.ndarray, task_s: np.ndarray) -> dict[str, Any]:
-    """``participations``: accepted, used reports, outcomes, dropout causes, task duration percentiles."""
+    """``participations``: accepted, used reports, outcomes, dropout causes, task duration
+    percentiles, and the share of each round's accepted devices that dropped out."""
     drops = labelled[labelled["outcome"] == "dropout"]
+    shares = round_dropout_shares(labelled)
     return {
         "accepted": int(len(labelled)),
         "used_reports": int(used.sum()),
@@ -66,28 +77,32 @@ def participations_part(labelled: pd.DataFrame, used: np.ndarray, task_s: np.nda
             json_key(k): int(v) for k, v in drops["dropout_cause"].value_counts().items() if v > 0 and k != "none"
         },
         "task_s": quantiles(task_s),
+        "round_dropout_share": {
+            "mean": float(shares.mean()) if shares.size else float("nan"),
+            "p90": float(np.quantile(shares, 0.9)) if shares.size else float("nan"),
+        },
     }
 
 
 def waste_part(totals: dict[str, float], waste_totals: dict[str, float], by_cause: pd.DataFrame,
                by_type: pd.DataFrame) -> dict[str, Any]:
-    """``waste``: the wasted fractions and totals, by cause and by device type."""
+    """``waste``: the wasted fractions and totals, the examples processed in all, by cause and by
+    device type."""
+    resources = ("compute_s", "bytes", "energy_wh", "examples")
     return {
         "compute_fraction": _fraction(waste_totals["compute_s"], totals["compute_s"]),
         "bytes_fraction": _fraction(waste_totals["bytes"], totals["bytes"]),
         "energy_fraction": _fraction(waste_totals["energy_wh"], totals["energy_wh"]),
-        "compute_s": waste_totals["compute_s"],
-        "bytes": waste_totals["bytes"],
-        "energy_wh": waste_totals["energy_wh"],
+        "examples_fraction": _fraction(waste_totals["examples"], totals["examples"]),
+        **{key: waste_totals[key] for key in resources},
+        "examples_processed": totals["examples"],
         "by_cause": {
-            json_key(row["cause"]): {"participations": row["participations"], "compute_s": row["compute_s"],
-                           "bytes": row["bytes"], "energy_wh": row["energy_wh"]}
+            json_key(row["cause"]): {"participations": row["participations"], **{k: row[k] for k in resources}}
             for row in by_cause.to_dict("records") if row["participations"] > 0
         },
         "by_device_type": {
-            row["device_type"]: {"compute_fraction": row["compute_fraction"],
-                                 "bytes_fraction": row["bytes_fraction"],
-                                 "energy_fraction": row["energy_fraction"]}
+            row["device_type"]: {f"{k}_fraction": row[f"{k}_fraction"] for k in ("compute", "bytes", "energy",
+                                                                                 "examples")}
             for row in by_type.to_dict("records")
         },
     }

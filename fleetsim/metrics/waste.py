@@ -5,24 +5,33 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-__all__ = ["waste_sums", "waste_by_cause", "waste_by_device_type", "dropout_table", "device_cost"]
+__all__ = ["labelled_frame", "waste_sums", "waste_by_cause", "waste_by_device_type", "dropout_table", "device_cost"]
 
-_RESOURCES = ["compute_s", "bytes", "energy_wh"]
+_RESOURCES = ["compute_s", "bytes", "energy_wh", "examples"]
+"""The work a participation costs, as columns of a labelled frame (see :func:`labelled_frame`)."""
+
+
+def labelled_frame(parts: pd.DataFrame) -> pd.DataFrame:
+    """The participations with the work columns the waste tables sum: ``bytes`` (download +
+    upload) and ``examples`` (``examples_processed``)."""
+    return parts.assign(bytes=parts["download_bytes"] + parts["upload_bytes"], examples=parts["examples_processed"])
 
 
 def waste_sums(frame: pd.DataFrame) -> dict[str, float]:
-    """Training seconds, bytes (down + up) and Wh of the participations in ``frame``."""
+    """Training seconds, bytes (down + up), Wh and examples processed of the participations in ``frame``."""
     return {
         "compute_s": float(frame["compute_s"].sum()),
         "bytes": float((frame["download_bytes"] + frame["upload_bytes"]).sum()),
         "energy_wh": float(frame["energy_wh"].sum()),
+        "examples": float(frame["examples_processed"].sum()),
     }
 
 
 def waste_by_cause(wasted: pd.DataFrame) -> pd.DataFrame:
-    """Wasted work per waste cause: ``cause``, the three resources, ``participations``, ``compute_share``.
+    """Wasted work per waste cause: ``cause``, the resources (compute, bytes, energy,
+    examples), ``participations``, ``compute_share``.
 
-    ``wasted`` holds the unused participations with a ``bytes`` column (down + up).
+    ``wasted`` holds the unused participations of a :func:`labelled_frame`.
     """
     total_compute = float(wasted["compute_s"].sum())
     by_cause = (
@@ -37,7 +46,7 @@ def waste_by_cause(wasted: pd.DataFrame) -> pd.DataFrame:
 
 
 def waste_by_device_type(labelled: pd.DataFrame, wasted: pd.DataFrame, type_names: list[str]) -> pd.DataFrame:
-    """All and wasted compute, bytes and energy per device type, and the wasted fractions."""
+    """All and wasted compute, bytes, energy and examples per device type, and the wasted fractions."""
     by_type_all = labelled.groupby("device_type", observed=False)[_RESOURCES].sum()
     by_type_waste = wasted.groupby("device_type", observed=False)[_RESOURCES].sum()
     table = pd.DataFrame(
@@ -49,10 +58,13 @@ def waste_by_device_type(labelled: pd.DataFrame, wasted: pd.DataFrame, type_name
             "wasted_bytes": by_type_waste["bytes"].to_numpy(),
             "energy_wh": by_type_all["energy_wh"].to_numpy(),
             "wasted_energy_wh": by_type_waste["energy_wh"].to_numpy(),
+            "examples": by_type_all["examples"].to_numpy(),
+            "wasted_examples": by_type_waste["examples"].to_numpy(),
         }
     )
     with np.errstate(divide="ignore", invalid="ignore"):
-        for key, col in (("compute", "compute_s"), ("bytes", "bytes"), ("energy", "energy_wh")):
+        for key, col in (("compute", "compute_s"), ("bytes", "bytes"), ("energy", "energy_wh"),
+                         ("examples", "examples")):
             table[f"{key}_fraction"] = table[f"wasted_{col}"] / table[col]
     return table
 

@@ -81,7 +81,8 @@ def bias_section(r: RunFolder) -> Section:
         answer = "No committed reports, so no group is represented in the model."
     return Section("bias", "Who is represented in the model?", answer, charts=charts, tables=tables,
                    notes=["Shares: of fleet devices, of eligible device-time (15-minute counts), of accepted devices, "
-                          "of committed reports, and of aggregation weight (sample counts of committed reports)."])
+                          "of committed reports, and of aggregation weight (the FedAvg weights of committed reports: "
+                          "the distinct examples each trained on, at most the examples and steps a round allows)."])
 
 
 def _never(r: RunFolder) -> tuple[Chart, Table, tuple[float, str, str] | None]:

@@ -13,7 +13,7 @@ import html
 from collections.abc import Iterable, Sequence
 
 from .model import Chart, Section, Table, format_value, raw_value
-from .style import COLOURS, MEANINGS
+from .style import COLOURS, MEANINGS, swatch_css
 
 __all__ = ["render_html", "Markup", "esc"]
 
@@ -195,7 +195,7 @@ def render_html(sections: Sequence[Section], summary: dict, run_name: str, versi
         tag("p", "Questions", class_="toc-title"),
         tag("ol", join(tag("li", tag("a", s.question, href=f"#s-{s.id}")) for s in sections)),
         tag("div", tag("p", "Colours", class_="toc-title"),
-            tag("ul", join(tag("li", tag("span", "", class_="swatch", style=f"background:{COLOURS[k]}"), MEANINGS[k])
+            tag("ul", join(tag("li", tag("span", "", class_="swatch", style=swatch_css(k)), MEANINGS[k])
                            for k in COLOURS)), class_="key"),
         class_="toc", aria_label="Questions")
     main = tag("main", join(_section(i + 1, s) for i, s in enumerate(sections)))

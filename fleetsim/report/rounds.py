@@ -7,11 +7,11 @@ import math
 import numpy as np
 
 from . import figures
-from .model import Chart, Column, Section, Table
+from .model import Chart, Column, Section, Table, format_value
 from .rundir import RunFolder
-from .text import STATUS_WORDS, STATUSES, column, instant, num, pct, seconds
+from .text import OPTIONAL_STATUSES, STATUS_WORDS, STATUSES, column, instant, num, pct, seconds
 
-__all__ = ["over_time_section", "durations_section", "warm_hours", "warm_note"]
+__all__ = ["over_time_section", "durations_section", "warm_hours", "warm_note", "overlap_words"]
 
 
 def warm_hours(r: RunFolder) -> int:
@@ -30,9 +30,9 @@ def warm_note(r: RunFolder, warm: int) -> str:
 
 
 def _present(r: RunFolder) -> list[str]:
-    """Round statuses shown: server outages only when a round was lost to one."""
+    """Round statuses shown: server outages and failed unmaskings only when a round ended so."""
     hourly = r.tables["hourly"]
-    return [k for k in STATUSES if k in hourly.columns and (k != "server_outage" or hourly[k].sum() > 0)]
+    return [k for k in STATUSES if k in hourly.columns and (k not in OPTIONAL_STATUSES or hourly[k].sum() > 0)]
 
 
 def _eligible_by_region(r: RunFolder) -> dict[str, np.ndarray]:
@@ -102,11 +102,21 @@ def over_time_section(r: RunFolder) -> Section:
                                            warm, "f-time"),
                   "Stacked bars of rounds closed per hour by outcome, above one panel of eligible devices per region.",
                   "Top: rounds by the hour they closed. Below: eligible devices (mean of the 15-minute counts in "
-                  "each hour), one panel per region on a shared scale." + warm_note(r, warm))
+                  "each hour), one panel per region on a shared scale." + warm_note(r, warm) + overlap_words(r))
     answer = _over_time_answer(r, statuses["committed"], total, eligible, warm)
     day_table, hourly_table = _tables(r, present, eligible)
     return Section("over-time", "When do rounds commit, and who is eligible then?", answer, charts=[chart],
                    tables=[day_table, hourly_table])
+
+
+def overlap_words(r: RunFolder) -> str:
+    """A sentence on overlapping rounds ('' when at most one round was open at a time)."""
+    s = r.summary["rounds"]
+    if int(s["open_peak"]) <= 1:
+        return ""
+    return (f" Rounds overlapped (rounds.in_flight {int(s['in_flight'])}): up to {int(s['open_peak'])} were open at "
+            f"once, {format_value(s['open_mean'], 'num')} on average, so a round's duration is not the time between "
+            "rounds, and rounds that closed in an hour may have opened in earlier ones.")
 
 
 def _durations_answer(r: RunFolder, selection: np.ndarray, report: np.ndarray) -> str:
@@ -124,8 +134,8 @@ def _durations_answer(r: RunFolder, selection: np.ndarray, report: np.ndarray) -
     )
     if report.size:
         return answer + (f"committed rounds gather their reports in {seconds(rep['p50'])} at the median, "
-                         f"{seconds(rep['p90'])} at p90 (deadline {seconds(deadline)}).")
-    return answer + f"no round committed, so none has a report time (deadline {seconds(deadline)})."
+                         f"{seconds(rep['p90'])} at p90 (deadline {seconds(deadline)}).") + overlap_words(r)
+    return answer + f"no round committed, so none has a report time (deadline {seconds(deadline)})." + overlap_words(r)
 
 
 def durations_section(r: RunFolder) -> Section:
@@ -150,7 +160,10 @@ def durations_section(r: RunFolder) -> Section:
         ], "f-durations"),
         "Histograms of selection time and report time with p50, p90 and p99 marked.",
         "Thick grey line: the setting that caps the time. Abandoned rounds are left out of selection time (they all "
-        "end at the timeout); report time counts committed rounds.",
+        "end at the timeout); report time counts committed rounds."
+        + (" Selection time counts from the round's opening, after any time the pacing server held it (section "
+           "on the server's load)." if s["pacing"] else "")
+        + overlap_words(r),
     )
     return Section("durations", "How long does a round take?", _durations_answer(r, selection, report),
                    charts=[chart], tables=[table])

@@ -33,13 +33,15 @@ _TEXT_COLUMNS = {"device_type", "region", "data_quartile", "cause", "dropout_cau
 # Every table the report reads, with the columns it needs.
 _TABLE_COLUMNS: dict[str, tuple[str, ...]] = {
     "hourly": ("hour", "hour_utc", "committed", "selection_timeout", "report_deadline", "eligible",
-               "checkins_per_s", "accepted", "peak_working"),
+               "checkins_per_s", "turned_away_share", "accepted", "peak_working", "held_s", "rounds_open"),
     "hourly_eligible_by_region": ("hour", "hour_utc", "region", "eligible"),
     "rounds": ("round", "status", "selection_s", "report_s", "duration_s"),
-    "waste_by_cause": ("cause", "compute_s", "bytes", "energy_wh", "participations", "compute_share"),
+    "waste_by_cause": ("cause", "compute_s", "bytes", "energy_wh", "examples", "participations", "compute_share"),
     "waste_by_device_type": ("device_type", "compute_s", "wasted_compute_s", "bytes", "wasted_bytes",
-                             "energy_wh", "wasted_energy_wh", "compute_fraction", "bytes_fraction",
-                             "energy_fraction"),
+                             "energy_wh", "wasted_energy_wh", "examples", "wasted_examples", "compute_fraction",
+                             "bytes_fraction", "energy_fraction", "examples_fraction"),
+    "unmasking_by_accepted": ("accepted", "needed", "rounds", "failed", "failed_share", "reports_mean",
+                              "responses_mean", "responses_p10", "margin_mean", "margin_min"),
     "participation_counts": ("reports", "devices"),
     "dropouts": ("dropout_cause", "dropout_phase", "dropouts"),
     "device_cost": ("device_type", "participations", "battery_pct_p50", "battery_pct_p90",
@@ -66,15 +68,25 @@ _EVENT_COLUMNS = ("device_type", "outcome", "accepted_s", "ended_s")
 _SUMMARY_KEYS = (
     "scenario", "seed", "config_hash", "policy", "devices", "horizon_start", "simulated_hours", "caution",
     "rounds.attempted", "rounds.committed", "rounds.ended_by.selection_timeout",
-    "rounds.ended_by.report_deadline", "rounds.ended_by.server_outage",
+    "rounds.ended_by.report_deadline", "rounds.ended_by.server_outage", "rounds.ended_by.unmasking_failed",
     "rounds.committed_per_hour", "rounds.selection_s", "rounds.report_s", "rounds.duration_s",
-    "rounds.selection_at_timeout", "rounds.eligible_correlation",
+    "rounds.selection_at_timeout", "rounds.eligible_correlation", "rounds.configure", "rounds.secure_aggregation",
+    "rounds.pacing", "rounds.in_flight", "rounds.open_peak", "rounds.open_mean",
     "participations.accepted", "participations.used_reports", "participations.task_s",
-    "waste.compute_fraction", "waste.bytes_fraction", "waste.energy_fraction",
+    "participations.round_dropout_share",
+    "waste.compute_fraction", "waste.bytes_fraction", "waste.energy_fraction", "waste.examples_fraction",
+    "waste.examples", "waste.examples_processed",
     "bias.coverage", "bias.gini", "bias.chi_square_device_type", "bias.chi_square_device_type_p",
     "bias.top_tenth_share",
-    "load.peak_working", "load.mean_working", "load.checkins_per_s_peak_hour",
+    "load.peak_working", "load.mean_working", "load.checkins_per_s_peak_hour", "secure_aggregation",
+    "server_load.basis", "server_load.checkins_per_s_mean", "server_load.checkins_per_s_peak",
+    "server_load.peak_hour_utc", "server_load.checkins", "server_load.accepted", "server_load.turned_away_share",
+    "server_load.rounds_held", "server_load.held_s", "server_load.held_share",
 )
+
+_SECURE_KEYS = ("threshold", "needed", "masked_upload_bytes", "reached_unmasking", "failed", "failed_share",
+                "responses_mean", "responses_p10", "margin_mean", "margin_p10", "reporters_lost_mean", "unmasking_s")
+"""Keys of summary.json's ``secure_aggregation`` block when it is not null (secure aggregation on)."""
 
 
 @dataclass(frozen=True)
@@ -185,6 +197,11 @@ def read_run_folder(folder: str | Path) -> RunFolder:
     if not path.is_dir():
         raise FleetsimError(f"{path}: not a folder (expected a run folder written by 'fleetsim run')")
     summary = _read_json(path / "summary.json", _SUMMARY_KEYS, path)
+    secure = summary["secure_aggregation"]
+    lacking_keys = [k for k in _SECURE_KEYS if not isinstance(secure, dict) or k not in secure]
+    if secure is not None and lacking_keys:
+        raise FleetsimError(f"{path / 'summary.json'}: lacks 'secure_aggregation.{lacking_keys[0]}'; was it written "
+                            "by this version of fleetsim?")
     config = _read_config(path / "config.json", path)
     tables = {name: _read_table(path / "tables" / f"{name}.csv", cols) for name, cols in _TABLE_COLUMNS.items()}
     _check_events(path / "events.parquet")

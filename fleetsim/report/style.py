@@ -17,13 +17,14 @@ import matplotlib
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
-__all__ = ["COLOURS", "MEANINGS", "INK", "MUTED", "figure", "svg_of", "short"]
+__all__ = ["COLOURS", "MEANINGS", "HATCHES", "INK", "MUTED", "figure", "svg_of", "short", "swatch_css", "fill"]
 
 COLOURS = {
     "committed": "#009E73",  # bluish green
     "report_deadline": "#D55E00",    # vermillion
     "selection_timeout": "#E69F00",  # orange
     "server_outage": "#000000",      # black
+    "unmasking_failed": "#D55E00",   # vermillion, hatched white (see HATCHES)
     "eligible": "#56B4E9",   # sky blue
     "accepted": "#0072B2",   # blue
     "wasted": "#CC79A7",     # reddish purple
@@ -36,12 +37,33 @@ MEANINGS = {
     "report_deadline": "rounds the report deadline ended with too few reports",
     "selection_timeout": "rounds the selection timeout ended with too few devices accepted",
     "server_outage": "rounds cut by a server outage",
+    "unmasking_failed": "rounds secure aggregation could not unmask: too few devices answered (hatched)",
     "eligible": "eligible devices (and the check-ins they make)",
     "accepted": "accepted devices and the tasks they run",
     "wasted": "device work no committed round used (straggler waste)",
-    "weight": "aggregation weight (FedAvg weights each update by its sample count)",
+    "weight": "aggregation weight (FedAvg weights each update by the distinct examples it trained on)",
     "fleet": "the whole fleet, devices that never reported, and other groups for comparison",
 }
+
+HATCHES = {"unmasking_failed": "///"}
+"""Keys drawn in their colour with white hatching: a related kind of data in a colour's family
+(rounds that failed the unmasking beside those the report deadline ended)."""
+
+
+def fill(key: str) -> dict[str, Any]:
+    """matplotlib keyword arguments filling a patch with ``key``'s colour (and hatching)."""
+    if key in HATCHES:
+        return {"facecolor": COLOURS[key], "edgecolor": "white", "hatch": HATCHES[key], "linewidth": 0}
+    return {"color": COLOURS[key], "linewidth": 0}
+
+
+def swatch_css(key: str) -> str:
+    """The CSS background of ``key``'s swatch in the page's colour key."""
+    colour = COLOURS[key]
+    if key in HATCHES:
+        return f"background:repeating-linear-gradient(135deg,{colour} 0 3px,#ffffff 3px 4.5px)"
+    return f"background:{colour}"
+
 
 INK = "#1f2933"
 """Text, axes and reference lines (percentiles, limits)."""

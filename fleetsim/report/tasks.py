@@ -15,10 +15,10 @@ import pandas as pd
 
 from ..survival import MIN_AT_RISK
 from . import figures
-from .model import Chart, Column, Section, Table, format_value
+from .model import Cell, Chart, Column, Section, Table, format_value
 from .rounds import warm_hours, warm_note
 from .rundir import RunFolder
-from .text import column, hour_text, instant, pct, records, seconds
+from .text import BASIS_WORDS, column, hour_text, instant, pct, records, seconds
 
 __all__ = ["survival_section", "cost_section", "load_section"]
 
@@ -93,7 +93,8 @@ def survival_section(r: RunFolder) -> Section:
         charts.append(Chart(
             figures.survival(drawn, "f-survival"),
             "Kaplan-Meier curves of the share of tasks not yet dropped out, one panel per device type.",
-            "Time runs from acceptance; a task that reported (on time or late) or was stopped at close counts as "
+            "Time runs from the task's start (its acceptance, or the selection's end when tasks are configured "
+            "after the selection); a task that reported (on time or late) or was stopped at close counts as "
             "censored. "
             f"Curves end where fewer than {MIN_AT_RISK} tasks remain at risk. Band: pointwise 95% interval "
             "(Greenwood variance on the log(-log) scale).",
@@ -138,40 +139,95 @@ def cost_section(r: RunFolder) -> Section:
 
 
 def _load_answer(r: RunFolder, checkins: np.ndarray, warm: int) -> str:
-    hourly, load = r.tables["hourly"], r.summary["load"]
+    hourly, load, server = r.tables["hourly"], r.summary["load"], r.summary["server_load"]
     n_hours = len(hourly)
     if not n_hours:
         return "The horizon holds no whole hour."
     at = int(np.argmax(checkins))
-    answer = (f"Check-ins peak at {format_value(load['checkins_per_s_peak_hour'], 'num')} per second in the hour "
-              f"from {hour_text(hourly['hour_utc'].iloc[at])}")
+    answer = (f"Check-ins ({BASIS_WORDS.get(server['basis'], server['basis'])}) peak at "
+              f"{format_value(server['checkins_per_s_peak'], 'num')} per second in the hour from "
+              f"{hour_text(hourly['hour_utc'].iloc[at])}, {format_value(server['checkins_per_s_mean'], 'num')} "
+              "on average")
     if 0 < warm < n_hours and at < warm:
         later = warm + int(np.argmax(checkins[warm:]))
         answer += (f", while no device was resting yet; after the first {warm} h they peak at "
                    f"{format_value(checkins[later], 'num')} per second "
                    f"({hour_text(hourly['hour_utc'].iloc[later])})")
+    answer += f"; {pct(server['turned_away_share'])} of them were turned away"
+    below = int((column(hourly, "turned_away_share") < 0).sum())
+    if server["basis"] != "counted" and below:
+        answer += (f" (an estimate that runs low when most check-ins are accepted: below 0 in {below} of "
+                   f"{n_hours} hours)")
+    if int(server["rounds_held"]):
+        answer += (f"; the server held {int(server['rounds_held']):,} rounds before opening them, for "
+                   f"{seconds(server['held_s'])} in all ({pct(server['held_share'])} of the horizon)")
     return answer + (f"; at most {int(load['peak_working']):,} devices work at once, "
                      f"{format_value(load['mean_working'], 'num')} on average.")
 
 
+def _load_figures(r: RunFolder) -> list[list[Any]]:
+    """The load table's rows (summary.json ``load``, ``server_load`` and ``rounds``)."""
+    load, server, rounds = r.summary["load"], r.summary["server_load"], r.summary["rounds"]
+    return [
+        ["Peak check-ins per second (hourly mean)", load["checkins_per_s_peak_hour"]],
+        ["Peak devices working at once", load["peak_working"]],
+        ["Mean devices working (task time / horizon)", load["mean_working"]],
+        ["Check-in figures", Cell(BASIS_WORDS.get(server["basis"], server["basis"]), "text")],
+        ["Mean check-ins per second over the run", server["checkins_per_s_mean"]],
+        ["Hour of the peak (UTC)", Cell(server["peak_hour_utc"], "text")],
+        ["Check-ins answered", server["checkins"]],
+        ["Of them accepted", server["accepted"]],
+        ["Share of check-ins turned away", Cell(server["turned_away_share"], "pct")],
+        ["Rounds held before opening", Cell(server["rounds_held"], "int")],
+        ["Time rounds were held (s)", server["held_s"]],
+        ["Share of the horizon a round was held", Cell(server["held_share"], "pct")],
+        ["Rounds in flight allowed (in_flight)", Cell(rounds["in_flight"], "int")],
+        ["Most rounds open at once", Cell(rounds["open_peak"], "int")],
+        ["Mean rounds open (open to end / horizon)", rounds["open_mean"]],
+    ]
+
+
+def _load_chart(r: RunFolder, checkins: np.ndarray, warm: int) -> Chart:
+    hourly, load, server, rounds = r.tables["hourly"], r.summary["load"], r.summary["server_load"], r.summary["rounds"]
+    counted = server["basis"] == "counted"
+    extra = [("Share of check-ins turned away", "turned away", column(hourly, "turned_away_share"), "pct")]
+    if rounds["pacing"]:
+        extra.append(("Time rounds were held, by the hour they opened", "minutes", column(hourly, "held_s") / 60.0,
+                      "num"))
+    if int(rounds["in_flight"]) > 1:
+        extra.append(("Rounds open at once (mean over the hour)", "rounds", column(hourly, "rounds_open"), "num"))
+    title = ("Check-ins the pacing server answered (counted, mean per hour)" if counted
+             else "Check-ins reaching the server (estimated from the census, mean per hour)")
+    basis = ("Check-ins per second: check-ins the server answered in the hour, accepted or not, / the hour's "
+             "seconds; turned away: 1 - accepted / answered." if counted else
+             "Check-ins per second: mean eligible, free devices in the hour / "
+             + ("(pacing stretch x check-in interval)" if rounds["pacing"] else "check-in interval")
+             + ", an estimate from the census, as the server does not count check-ins one by one; turned away: "
+             "1 - devices accepted / those check-ins. The census counts the devices waiting to check in, so when "
+             "most check-ins are accepted the estimate runs low and the share turned away with it (below 0 in an "
+             "hour that accepted more devices than the estimate).")
+    return Chart(figures.load(len(hourly), instant(r.summary["horizon_start"]), checkins, title,
+                              column(hourly, "peak_working"), load["mean_working"], extra, warm, "f-load"),
+                 "Check-ins per second by hour above the peak number of devices working in each hour, then "
+                 + ", ".join(t[0].lower() for t in extra) + ".",
+                 basis + " Working: devices between the start and the end of their task."
+                 + (" Held: the time the server waited before opening a round." if rounds["pacing"] else "")
+                 + warm_note(r, warm))
+
+
 def load_section(r: RunFolder) -> Section:
-    """Can the server take the load? Check-ins per second and devices working, by hour."""
-    hourly, load = r.tables["hourly"], r.summary["load"]
+    """Can the server take the load? Check-ins per second (counted or estimated), the share
+    turned away, rounds held and open, and devices working, by hour."""
+    hourly = r.tables["hourly"]
     checkins = column(hourly, "checkins_per_s")
     warm = warm_hours(r)
-    chart = Chart(figures.load(len(hourly), instant(r.summary["horizon_start"]), checkins,
-                               column(hourly, "peak_working"), load["mean_working"], warm, "f-load"),
-                  "Check-ins per second by hour above the peak number of devices working in each hour.",
-                  "Check-ins per second: mean eligible devices in the hour / check-in interval. Working: devices "
-                  "between acceptance and the end of their task." + warm_note(r, warm))
     table = Table("load", "Server load (summary.json)", [Column("figure", "Figure", "text"),
-                                                         Column("value", "Value", "num")],
-                  [["Peak check-ins per second (hourly mean)", load["checkins_per_s_peak_hour"]],
-                   ["Peak devices working at once", load["peak_working"]],
-                   ["Mean devices working (task time / horizon)", load["mean_working"]]])
+                                                         Column("value", "Value", "num")], _load_figures(r))
     shown = [Column("hour_utc", "Hour (UTC)", "text"), Column("checkins_per_s", "Check-ins per second"),
-             Column("accepted", "Devices accepted", "int"), Column("peak_working", "Peak working", "int")]
+             Column("turned_away_share", "Turned away", "pct"), Column("accepted", "Devices accepted", "int"),
+             Column("peak_working", "Peak working", "int"), Column("held_s", "Held (s)"),
+             Column("rounds_open", "Rounds open (mean)")]
     hourly_table = Table("load-hourly", "Server load per hour", shown, records(hourly, shown), detail=True,
                          source="tables/hourly.csv")
-    return Section("load", "Can the server take the load?", _load_answer(r, checkins, warm), charts=[chart],
-                   tables=[table, hourly_table])
+    return Section("load", "Can the server take the load?", _load_answer(r, checkins, warm),
+                   charts=[_load_chart(r, checkins, warm)], tables=[table, hourly_table])

@@ -16,18 +16,24 @@ import pandas as pd
 from .model import Column, format_value
 
 __all__ = ["num", "opt", "pct", "seconds", "hour_text", "instant", "column", "records", "p_text",
-           "STATUSES", "STATUS_WORDS", "GROUPING_LABELS", "status_counts"]
+           "STATUSES", "STATUS_WORDS", "OPTIONAL_STATUSES", "GROUPING_LABELS", "BASIS_WORDS", "status_counts"]
 
-STATUSES = ("committed", "selection_timeout", "report_deadline", "server_outage")
+STATUSES = ("committed", "selection_timeout", "report_deadline", "server_outage", "unmasking_failed")
 """Round statuses as the hourly and daily tables name their columns (``-`` written ``_``)."""
 STATUS_WORDS = {"committed": "committed", "selection_timeout": "ended by the selection timeout",
-                "report_deadline": "ended by the report deadline", "server_outage": "cut by a server outage"}
+                "report_deadline": "ended by the report deadline", "server_outage": "cut by a server outage",
+                "unmasking_failed": "ended by a failed unmasking"}
+OPTIONAL_STATUSES = ("server_outage", "unmasking_failed")
+"""Statuses the figures and tables over time show only when some round had them."""
 
 
 def status_counts(rounds: dict[str, Any]) -> dict[str, int]:
     """Rounds by status (keys of STATUSES) from summary.json's ``rounds`` part."""
     return {"committed": int(rounds["committed"]), **{k: int(v) for k, v in rounds["ended_by"].items()}}
 
+
+BASIS_WORDS = {"counted": "counted by the pacing server", "estimated": "estimated from the census"}
+"""How the check-in figures were obtained (summary.json ``server_load.basis``), in words."""
 
 GROUPING_LABELS = {"device_type": "device type", "region": "region", "data_quartile": "data-size quartile"}
 

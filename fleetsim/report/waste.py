@@ -7,7 +7,7 @@ from typing import Any
 import numpy as np
 
 from . import figures
-from .model import Chart, Column, Section, Table
+from .model import Chart, Column, Section, Table, format_value
 from .rundir import RunFolder
 from .text import column, opt, pct
 
@@ -15,7 +15,8 @@ __all__ = ["waste_section"]
 
 _RESOURCES = (("Compute (device hours)", "compute_s", "wasted_compute_s", 3600.0, "compute_fraction"),
               ("Data (GB)", "bytes", "wasted_bytes", 1e9, "bytes_fraction"),
-              ("Energy (Wh)", "energy_wh", "wasted_energy_wh", 1.0, "energy_fraction"))
+              ("Energy (Wh)", "energy_wh", "wasted_energy_wh", 1.0, "energy_fraction"),
+              ("Examples (millions)", "examples", "wasted_examples", 1e6, "examples_fraction"))
 """(panel title, total column, wasted column, unit divisor, fraction column) per resource."""
 
 
@@ -25,18 +26,21 @@ def _by_cause(r: RunFolder) -> tuple[Chart, Table]:
     hours = column(by_cause, "compute_s") / 3600.0
     gigabytes = column(by_cause, "bytes") / 1e9
     energy = column(by_cause, "energy_wh")
+    examples = column(by_cause, "examples") / 1e6
     chart = Chart(
         figures.waste_by_cause(causes, [("Compute (device hours)", hours), ("Data (GB)", gigabytes),
-                                        ("Energy (Wh)", energy)], "f-waste-cause"),
-        "Bars of wasted compute, data and energy for each waste cause.",
-        "Labels: the cause's share of all wasted compute, data or energy.")
+                                        ("Energy (Wh)", energy), ("Examples (millions)", examples)],
+                               "f-waste-cause"),
+        "Bars of wasted compute, data, energy and examples processed for each waste cause.",
+        "Labels: the cause's share of all wasted compute, data, energy or examples.")
     table = Table(
         "waste-cause", "Wasted work by cause (tables/waste_by_cause.csv)",
         [Column("cause", "Cause", "text"), Column("participations", "Participations", "int"),
          Column("compute_h", "Compute (h)"), Column("data_gb", "Data (GB)"), Column("energy_wh", "Energy (Wh)"),
-         Column("compute_share", "Share of wasted compute", "pct")],
-        [[c, int(p), float(h), float(g), float(e), float(sh)] for c, p, h, g, e, sh in
-         zip(causes, by_cause["participations"], hours, gigabytes, energy, by_cause["compute_share"], strict=True)])
+         Column("examples_m", "Examples (millions)"), Column("compute_share", "Share of wasted compute", "pct")],
+        [[c, int(p), float(h), float(g), float(e), float(x), float(sh)] for c, p, h, g, e, x, sh in
+         zip(causes, by_cause["participations"], hours, gigabytes, energy, examples, by_cause["compute_share"],
+             strict=True)])
     return chart, table
 
 
@@ -48,15 +52,17 @@ def _by_type(r: RunFolder) -> tuple[Chart, Table]:
         t, wa = column(by_type, total_column) / scale, column(by_type, wasted_column) / scale
         panels.append((title, t - wa, wa))
     chart = Chart(figures.waste_by_type(types, panels, "f-waste-type"),
-                  "Bars of used and wasted compute, data and energy for each device type.",
-                  "Labels: the wasted share of the device type's own compute, data or energy.")
+                  "Bars of used and wasted compute, data, energy and examples processed for each device type.",
+                  "Labels: the wasted share of the device type's own compute, data, energy or examples.")
     columns = [Column("device_type", "Device type", "text"),
                Column("compute_h", "Compute (h)"), Column("wasted_compute_h", "Wasted compute (h)"),
                Column("compute_fraction", "Compute wasted", "pct"),
                Column("data_gb", "Data (GB)"), Column("wasted_data_gb", "Wasted data (GB)"),
                Column("bytes_fraction", "Data wasted", "pct"),
                Column("energy_wh", "Energy (Wh)"), Column("wasted_energy_wh", "Wasted energy (Wh)"),
-               Column("energy_fraction", "Energy wasted", "pct")]
+               Column("energy_fraction", "Energy wasted", "pct"),
+               Column("examples_m", "Examples (millions)"), Column("wasted_examples_m", "Wasted examples (millions)"),
+               Column("examples_fraction", "Examples wasted", "pct")]
     rows = []
     for i, name in enumerate(types):
         row: list[Any] = [name]
@@ -80,8 +86,9 @@ def waste_section(r: RunFolder) -> Section:
     fractions = column(by_type, "compute_fraction")
     worst = types[int(np.nanargmax(fractions))] if np.isfinite(fractions).any() else None
     answer = (
-        f"{pct(w['compute_fraction'])} of device compute, {pct(w['bytes_fraction'])} of data and "
-        f"{pct(w['energy_fraction'])} of energy went into no committed round"
+        f"{pct(w['examples_fraction'])} of the examples devices processed ({format_value(w['examples'], 'num')} of "
+        f"{format_value(w['examples_processed'], 'num')}), {pct(w['compute_fraction'])} of device compute, "
+        f"{pct(w['bytes_fraction'])} of data and {pct(w['energy_fraction'])} of energy went into no committed round"
         + (f"; the largest causes of wasted compute are {' and '.join(leaders)}" if leaders else "")
         + (f"; {worst} wastes the largest share of its own compute ({pct(np.nanmax(fractions))})." if worst else ".")
     )

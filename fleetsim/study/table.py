@@ -71,10 +71,10 @@ ZERO_WHEN_ABSENT: dict[str, tuple[str, ...]] = {
 """Column prefixes of counts by cause or outcome, with the words that may follow: a run that
 saw none of a cause has no such key, and its column is 0."""
 
-# Which way is better, by column pattern (first match wins). Everything else is neutral: shares,
-# accepted counts, server load, test statistics. These are choices of this tool, stated in
-# docs/studies.md; they are common practice, not taken from a source.
-_DIRECTIONS: tuple[tuple[str, Direction], ...] = (
+# Which way is better, by column pattern (first match wins; None: neutral). Everything else is
+# neutral: shares, accepted counts, server load, test statistics. These are choices of this
+# tool, stated in docs/studies.md; they are common practice, not taken from a source.
+_DIRECTIONS: tuple[tuple[str, Direction | None], ...] = (
     ("rounds_committed", "higher"),
     ("rounds_committed_per_hour", "higher"),
     ("participations_used_reports", "higher"),
@@ -87,6 +87,8 @@ _DIRECTIONS: tuple[tuple[str, Direction], ...] = (
     ("rounds_duration_s_*", "lower"),
     ("rounds_selection_s_*", "lower"),
     ("rounds_report_s_*", "lower"),
+    # Totals of work done, used or not, are the size of the run, not waste: neutral.
+    ("waste_examples_processed", None),
     ("waste_*", "lower"),
     ("participations_dropouts_by_cause_*", "lower"),
     ("participations_by_outcome_late", "lower"),

@@ -12,13 +12,21 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 from matplotlib.ticker import MaxNLocator
 
-from ..style import COLOURS, INK, MUTED, figure, short, svg_of
+from ..style import COLOURS, HATCHES, INK, MUTED, figure, fill, short, svg_of
 from .common import bars_h, edge, mark_off_scale, pct_label, scale, text_on, time_axis
 
 __all__ = ["share_rows", "rounds_over_time", "durations", "load"]
 
 
 # ------------------------------------------------------------------------------ shares
+
+
+def _segment(key: str) -> dict[str, Any]:
+    """A share bar's fill: hatched keys as :func:`fleetsim.report.style.fill` draws them, others
+    with their edge (the pale weight colour gets a dark one)."""
+    if key in HATCHES:
+        return fill(key)
+    return {"facecolor": COLOURS[key], "edgecolor": edge(key), "linewidth": 0.6}
 
 
 def share_rows(rows: Sequence[tuple[str, Sequence[tuple[str, float]]]], legend: dict[str, str], prefix: str) -> str:
@@ -33,7 +41,7 @@ def share_rows(rows: Sequence[tuple[str, Sequence[tuple[str, float]]]], legend: 
             for key, share in segments:
                 if not np.isfinite(share) or share <= 0:
                     continue
-                ax.barh(yi, share, left=left, height=0.62, color=COLOURS[key], edgecolor=edge(key), linewidth=0.6)
+                ax.barh(yi, share, left=left, height=0.62, **_segment(key))
                 if share >= 0.07:
                     ax.text(left + share / 2, yi, pct_label(share), ha="center", va="center", fontsize=8.5,
                             color=text_on(COLOURS[key]))
@@ -45,7 +53,7 @@ def share_rows(rows: Sequence[tuple[str, Sequence[tuple[str, float]]]], legend: 
         ax.grid(axis="x", visible=False)
         ax.spines["left"].set_visible(False)
         ax.tick_params(axis="y", length=0)
-        handles = [Patch(facecolor=COLOURS[k], edgecolor=edge(k), label=legend[k]) for k in legend if k in seen]
+        handles = [Patch(**_segment(k), label=legend[k]) for k in legend if k in seen]
         fig.legend(handles=handles, loc="outside upper left", ncols=min(len(handles), 3))
         return svg_of(fig, prefix)
 
@@ -70,9 +78,9 @@ def rounds_over_time(
         handles = []
         for status, counts in statuses.items():
             # One filled step patch per status (hundreds of bars would make a heavy SVG).
-            top.stairs(bottom + counts, edges, baseline=bottom, fill=True, color=COLOURS[status], linewidth=0)
+            top.stairs(bottom + counts, edges, baseline=bottom, fill=True, **fill(status))
             bottom = bottom + counts
-            handles.append(Patch(color=COLOURS[status], label=f"{status.replace('_', ' ')} rounds"))
+            handles.append(Patch(**fill(status), label=f"{status.replace('_', ' ')} rounds"))
         top.set_ylabel("rounds closed\nper hour")
         top.legend(handles=handles, loc="upper left", ncols=len(handles), bbox_to_anchor=(0, 1.18))
         time_axis(top, n_hours, start, labels=False)
@@ -134,18 +142,42 @@ def durations(
 # ------------------------------------------------------------------------------ load
 
 
+def _extra_panel(ax: Any, edges: np.ndarray, title: str, label: str, values: np.ndarray, kind: str) -> None:
+    """One more hourly panel under the load figure: a share (``pct``) as a step line, or an amount as bars."""
+    finite = np.where(np.isfinite(values), values, 0.0)
+    if kind == "pct":  # an hour with nothing answered has no share: a gap in the line
+        ax.step(edges, np.append(values, values[-1:]), where="post", color=COLOURS["eligible"], linewidth=1.2)
+        # An estimated share can fall below 0 (more accepted than estimated): shown, not cut off.
+        low = min(0.0, float(np.nanmin(values)) * 1.1) if np.isfinite(values).any() else 0.0
+        ax.set_ylim(low, 1)
+        ticks = ([low] if low < -0.05 else []) + [0.0, 0.5, 1.0]
+        ax.set_yticks(ticks, [f"{t:.0%}" for t in ticks])
+        ax.axhline(0.0, color=MUTED, linewidth=0.8)
+    else:
+        ax.stairs(finite, edges, fill=True, color=COLOURS["accepted"], linewidth=0)
+        ax.set_ylim(0, max(float(finite.max()) * 1.15 if finite.size else 0.0, 1.0))
+    ax.set_ylabel(label)
+    ax.set_title(title)
+
+
 def load(
     n_hours: int,
     start: datetime,
     checkins_per_s: np.ndarray,
+    checkins_title: str,
     peak_working: np.ndarray,
     mean_working: float | None,
+    extra: Sequence[tuple[str, str, np.ndarray, str]],
     warm_hours: int,
     prefix: str,
 ) -> str:
-    """Check-ins per second by hour above the peak number of devices working in each hour."""
-    with figure(4.0) as fig:
-        top, bottom = fig.subplots(2, 1, sharex=True)
+    """Check-ins per second by hour (``checkins_title`` says how they were obtained) above the
+    peak number of devices working in each hour, then one panel per ``extra`` (title, axis
+    label, hourly values, ``pct`` or ``num``)."""
+    heights = [1.0, 1.0] + [0.7] * len(extra)
+    with figure(4.0 + 1.35 * len(extra)) as fig:
+        axes = np.atleast_1d(fig.subplots(2 + len(extra), 1, sharex=True, gridspec_kw={"height_ratios": heights}))
+        top, bottom = axes[0], axes[1]
         edges = np.arange(n_hours + 1)
         top.fill_between(edges, np.append(checkins_per_s, checkins_per_s[-1:]), step="post",
                          color=COLOURS["eligible"], alpha=0.35, linewidth=0)
@@ -155,7 +187,7 @@ def load(
         top_c, _ = scale([checkins_per_s], warm_hours)
         top.set_ylim(0, top_c)
         mark_off_scale(top, checkins_per_s, top_c)
-        top.set_title("Check-ins reaching the server (mean per hour)")
+        top.set_title(checkins_title)
         time_axis(top, n_hours, start, labels=False)
         bottom.stairs(peak_working, edges, fill=True, color=COLOURS["accepted"], linewidth=0,
                       label="peak devices working in the hour")
@@ -168,6 +200,9 @@ def load(
         top_w, _ = scale([peak_working], warm_hours)
         bottom.set_ylim(0, top_w * 1.2)
         mark_off_scale(bottom, peak_working, top_w * 1.2)
-        time_axis(bottom, n_hours, start, labels=True)
-        bottom.set_xlabel("simulated time (UTC)")
+        for ax, (title, label, values, kind) in zip(axes[2:], extra, strict=True):
+            _extra_panel(ax, edges, title, label, values, kind)
+        for ax in axes:
+            time_axis(ax, n_hours, start, labels=ax is axes[-1])
+        axes[-1].set_xlabel("simulated time (UTC)")
         return svg_of(fig, prefix)
