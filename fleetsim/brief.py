@@ -37,7 +37,7 @@ def _load_line(load: dict[str, Any] | None) -> str:
     """Check-ins per second (mean, peak hour) and the share turned away, with their basis."""
     if not load or load.get("checkins_per_s_peak") is None:
         return ""
-    basis = "counted" if load["basis"] == "counted" else "estimated from the census"
+    basis = "estimated from the census"
     held = (f"; {load['rounds_held']} rounds held, {_pct(load['held_share'])} of the horizon"
             if load.get("rounds_held") else "")
     return (f"server load ({basis}): {load['checkins_per_s_mean']:.3g} check-ins/s on average, peak "

@@ -37,7 +37,6 @@ __all__ = ["Cohort", "resolve_cohort", "disruption_factor", "task_times"]
 _BATTERY = CAUSES.index("battery-low")
 _EXECUTION_LIMIT = CAUSES.index("execution-limit")
 _CRASH = CAUSES.index("crash")
-_UNMASKING = PHASES.index("unmasking")
 _PLAIN = ("download", "train", "upload")
 _SECURE = ("download", "key-advertisement", "key-sharing", "train", "upload")
 

@@ -66,20 +66,17 @@ class Pacer:
                 self._seen = self._seen[i:]
                 break
 
-    def _rates(self) -> tuple[float, float]:
-        """Eligible check-ins per second met lately (at the stretch then) and unpaced."""
+    def _unpaced_rate(self) -> float:
+        """Eligible check-ins per second met lately, scaled by the stretch each was met at: the
+        rate an unpaced server would meet."""
         span = sum(s for s, _, _ in self._seen)
-        if span <= 0:
-            return 0.0, 0.0
-        met = sum(c for _, c, _ in self._seen) / span
-        unpaced = sum(c * m for _, c, m in self._seen) / span
-        return met, unpaced
+        return sum(c * m for _, c, m in self._seen) / span if span > 0 else 0.0
 
     # ------------------------------------------------------------------ decisions
 
     def set_stretch(self) -> int:
         """Set and return the stretch for the next round from the unpaced rate met lately."""
-        _, unpaced = self._rates()
+        unpaced = self._unpaced_rate()
         stretch = math.floor(unpaced / self.rate) if unpaced > 0 else 1
         stretch = 1 if stretch < max(self.fewest, 2) else min(stretch, self.most)
         self.runtime.stretch = stretch
@@ -91,8 +88,7 @@ class Pacer:
         With no look yet, a round opens."""
         if not self._seen:
             return True
-        met, unpaced = self._rates()
-        return unpaced / self.runtime.stretch * self.timeout >= self.needed
+        return self._unpaced_rate() / self.runtime.stretch * self.timeout >= self.needed
 
     def look(self, start: float, end: float) -> None:
         """Hold: meet the check-ins in [start, end) (all turned away) and note their rate."""

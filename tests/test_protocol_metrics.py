@@ -18,7 +18,6 @@ once is the largest number covering one instant (a sweep over starts and ends, b
 
 from __future__ import annotations
 
-import copy
 import json
 import math
 from pathlib import Path
@@ -32,7 +31,6 @@ import fleetsim
 from fleetsim.brief import render_summary
 from fleetsim.config.protocol import SecureAggregation
 from fleetsim.events import CAUSES, OUTCOMES, ROUND_STATUS, WASTE_CAUSES
-from fleetsim.metrics import compute_metrics
 from fleetsim.metrics.bias import bias_tables
 from fleetsim.metrics.load import hourly_table, open_by_hour, rounds_open, server_load_part, stretch_at
 from fleetsim.metrics.rounds import round_frame
@@ -188,7 +186,7 @@ def _census(totals: dict[float, float]) -> pd.DataFrame:
     })
 
 
-def _record(accepted_s: list[float], load: pd.DataFrame | None = None, paced: bool = False) -> SimpleNamespace:
+def _record(accepted_s: list[float], paced: bool = False) -> SimpleNamespace:
     """A run record as the load metrics read it: check-ins every 600 s, four census counts in
     the first hour (eligible 600, 1200, 600, 1200) and two in the second (300, 300)."""
     accepted = np.asarray(accepted_s, dtype=float)
@@ -197,7 +195,6 @@ def _record(accepted_s: list[float], load: pd.DataFrame | None = None, paced: bo
         config=SimpleNamespace(rounds=rounds),
         census=_census({0.0: 600.0, 900.0: 1200.0, 1800.0: 600.0, 2700.0: 1200.0, 3600.0: 300.0, 4500.0: 300.0}),
         participations=pd.DataFrame({"accepted_s": accepted, "started_s": accepted, "ended_s": accepted + 10.0}),
-        load=load,
     )
 
 
@@ -210,23 +207,6 @@ def _held_rounds() -> pd.DataFrame:
 def _load_of(record: SimpleNamespace, rounds: pd.DataFrame) -> tuple[pd.DataFrame, dict]:
     hourly, _, _ = hourly_table(START, HORIZON, {}, record, rounds, ["north", "south"])
     return hourly, server_load_part(record, hourly, rounds, HORIZON)
-
-
-def test_counted_load_by_hand():
-    # 60 check-ins a minute in the first hour (15 accepted), 90 a minute in the 30 minutes of
-    # the second (9 accepted): 3600 / 3600 s = 1 per second, then 2700 / 1800 s = 1.5.
-    minute = np.arange(90)
-    load = pd.DataFrame({"minute": minute, "checkins": np.where(minute < 60, 60, 90),
-                         "accepted": np.where(minute < 60, 15, 9)})
-    hourly, part = _load_of(_record([100.0] * 7, load, paced=True), _held_rounds())
-    assert np.allclose(hourly["checkins_per_s"], [1.0, 1.5], rtol=1e-12, atol=0)
-    assert np.allclose(hourly["turned_away_share"], [1 - 900 / 3600, 1 - 270 / 2700], rtol=1e-12, atol=0)
-    assert part["basis"] == "counted"
-    assert part["checkins"] == load["checkins"].sum() == 6300 and part["accepted"] == load["accepted"].sum() == 1170
-    assert math.isclose(part["checkins_per_s_mean"], 6300 / 5400, rel_tol=1e-12)
-    assert math.isclose(part["turned_away_share"], 1 - 1170 / 6300, rel_tol=1e-12)
-    assert part["checkins_per_s_peak"] == 1.5 and part["peak_hour_utc"] == "2026-03-02T01:00:00Z"
-    assert list(hourly["accepted"]) == [7, 0]  # participations, beside the server's own counts
 
 
 def test_estimated_load_by_hand():
@@ -479,27 +459,6 @@ def test_a_paced_runs_estimate_divides_by_its_stretch(stretched):
         assert math.isclose(s["server_load"]["checkins_per_s_mean"], mean, rel_tol=1e-12)
         # Unpaced the same census would give several times the rate.
         assert (hourly["eligible"] / 600.0 > 5 * hourly["checkins_per_s"]).all()
-
-
-def test_counted_load_is_the_sum_of_the_servers_counts(paced):
-    # The counts the pacing server keeps (RunRecord.load, per minute): the run's own when the
-    # engine records them, else counts attached to the run's record by hand.
-    record = copy.copy(paced.record)
-    counts = getattr(record, "load", None)
-    if counts is None:
-        minute = np.arange(12 * 60)
-        counts = pd.DataFrame({"minute": minute, "checkins": 50 + minute % 7, "accepted": minute % 5})
-        record.load = counts
-    metrics = compute_metrics(record)
-    load, hourly = metrics.summary["server_load"], metrics.tables["hourly"]
-    per_hour = counts.groupby(counts["minute"] // 60)[["checkins", "accepted"]].sum()
-    assert load["basis"] == "counted"
-    assert load["checkins"] == counts["checkins"].sum() and load["accepted"] == counts["accepted"].sum()
-    assert math.isclose(load["checkins_per_s_mean"], counts["checkins"].sum() / (12 * 3600), rel_tol=1e-12)
-    assert np.allclose(hourly["checkins_per_s"], per_hour["checkins"] / 3600, rtol=1e-12, atol=0)
-    assert np.allclose(hourly["turned_away_share"], 1 - per_hour["accepted"] / per_hour["checkins"], rtol=1e-12)
-    assert math.isclose(load["turned_away_share"], 1 - counts["accepted"].sum() / counts["checkins"].sum(),
-                        rel_tol=1e-12)
 
 
 def test_a_paced_runs_holds_and_overlapping_rounds(paced):

@@ -1,5 +1,5 @@
 """The hourly view and the server's load: eligible devices (census), check-ins answered and
-turned away (counted under pacing, else estimated from the census), acceptances, rounds held
+turned away (estimated from the census), acceptances, rounds held
 and open, and devices working (docs/metrics.md)."""
 
 from __future__ import annotations
@@ -14,10 +14,11 @@ from ..analysis import concurrency
 from ..events import json_key
 from ..units import format_instant
 
-__all__ = ["hourly_table", "hour_seconds", "open_by_hour", "server_load_part", "rounds_open", "counted_load"]
+__all__ = ["hourly_table", "hour_seconds", "open_by_hour", "server_load_part", "rounds_open"]
 
-COUNTED, ESTIMATED = "counted", "estimated"
-"""The two bases of the check-in figures: counted by the pacing server, or estimated from the census."""
+ESTIMATED = "estimated"
+"""The basis of the check-in figures: estimated from the census (the engine does not count
+check-ins one by one, with or without pacing)."""
 
 
 def _eligible_by_hour(census: pd.DataFrame, hour_index: np.ndarray,
@@ -50,12 +51,6 @@ def hour_seconds(n_hours: int, horizon_s: float) -> np.ndarray:
     return np.clip(horizon_s - 3600.0 * np.arange(n_hours), 0.0, 3600.0)
 
 
-def counted_load(record: Any) -> pd.DataFrame | None:
-    """The pacing server's per-minute counts of the record (``RunRecord.load``), or None when
-    it holds none (no pacing)."""
-    return getattr(record, "load", None)
-
-
 def stretch_at(times: np.ndarray, rounds: pd.DataFrame) -> np.ndarray:
     """The pacing stretch m in force at each time: that of the last round opened at or before it
     (the server sets it as a round opens; a hold keeps the one before); before the first round
@@ -75,15 +70,6 @@ def estimated_rates(record: Any, rounds: pd.DataFrame) -> tuple[np.ndarray, np.n
     paced = record.config.rounds.pacing is not None
     stretch = stretch_at(times, rounds) if paced else np.ones(times.size)
     return times, per_count.to_numpy(dtype=float) / (stretch * float(record.config.rounds.checkin_every))
-
-
-def _counted_by_hour(load: pd.DataFrame, n_hours: int) -> tuple[np.ndarray, np.ndarray]:
-    """Check-ins the pacing server answered, and of them accepted, per hour (from its minutes)."""
-    hour = load["minute"].to_numpy(dtype=np.int64) // 60
-    ok = (hour >= 0) & (hour < n_hours)
-    answered = np.bincount(hour[ok], weights=load["checkins"].to_numpy(dtype=float)[ok], minlength=n_hours)
-    accepted = np.bincount(hour[ok], weights=load["accepted"].to_numpy(dtype=float)[ok], minlength=n_hours)
-    return answered[:n_hours], accepted[:n_hours]
 
 
 def _turned_away(accepted: np.ndarray | float, answered: np.ndarray | float) -> Any:
@@ -126,9 +112,9 @@ def hourly_table(
     working at once over the run.
 
     ``closed``: rounds closed per hour by status; ``record``: the run's RunRecord (census,
-    participations, the pacing server's counts ``load`` or None, the check-in interval);
-    ``rounds``: :func:`fleetsim.metrics.rounds.round_frame`'s. Check-ins per second are
-    counted when the record holds ``load``, else the hour's mean of :func:`estimated_rates`.
+    participations, the check-in interval); ``rounds``:
+    :func:`fleetsim.metrics.rounds.round_frame`'s. Check-ins per second are the hour's mean of
+    :func:`estimated_rates`.
     """
     n_hours = int(np.ceil(horizon_s / 3600.0))
     parts = record.participations
@@ -145,17 +131,10 @@ def hourly_table(
     ok = accepted_s < horizon_s  # the last hour of a horizon that is not whole ends with it
     accepted = np.bincount(accept_hour[ok], minlength=n_hours)[:n_hours]
     seconds = hour_seconds(n_hours, horizon_s)
-    counted = counted_load(record)
-    if counted is not None:
-        answered, taken = _counted_by_hour(counted, n_hours)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            hourly["checkins_per_s"] = np.where(seconds > 0, answered / seconds, np.nan)
-    else:
-        times, rates = estimated_rates(record, rounds)
-        per_hour = pd.Series(rates).groupby(np.floor(times / 3600.0).astype(np.int64)).mean()
-        hourly["checkins_per_s"] = per_hour.reindex(hour_index).fillna(0.0).to_numpy()
-        answered, taken = hourly["checkins_per_s"].to_numpy() * seconds, accepted
-    hourly["turned_away_share"] = _turned_away(taken, answered)
+    times, rates = estimated_rates(record, rounds)
+    per_hour = pd.Series(rates).groupby(np.floor(times / 3600.0).astype(np.int64)).mean()
+    hourly["checkins_per_s"] = per_hour.reindex(hour_index).fillna(0.0).to_numpy()
+    hourly["turned_away_share"] = _turned_away(accepted, hourly["checkins_per_s"].to_numpy() * seconds)
     hourly["accepted"] = accepted
     # Devices working at once: sweep over task starts and ends (a device accepted after the
     # selection waits, not working, until its task starts).
@@ -171,12 +150,9 @@ def hourly_table(
 
 
 def _load_totals(record: Any, rounds: pd.DataFrame, horizon_s: float) -> tuple[str, float, float]:
-    """(basis, check-ins answered, accepted) over the horizon: counted by the pacing server, or
-    estimated: the mean over the census counts of :func:`estimated_rates` x horizon, and the
-    participations accepted within the horizon."""
-    counted = counted_load(record)
-    if counted is not None:
-        return COUNTED, float(counted["checkins"].sum()), float(counted["accepted"].sum())
+    """(basis, check-ins answered, accepted) over the horizon, estimated: the mean over the
+    census counts of :func:`estimated_rates` x horizon, and the participations accepted within
+    the horizon."""
     _, rates = estimated_rates(record, rounds)
     rate = float(rates.mean()) if rates.size else 0.0
     accepted = record.participations["accepted_s"].to_numpy()

@@ -155,7 +155,7 @@ def _load_answer(r: RunFolder, checkins: np.ndarray, warm: int) -> str:
                    f"({hour_text(hourly['hour_utc'].iloc[later])})")
     answer += f"; {pct(server['turned_away_share'])} of them were turned away"
     below = int((column(hourly, "turned_away_share") < 0).sum())
-    if server["basis"] != "counted" and below:
+    if below:
         answer += (f" (an estimate that runs low when most check-ins are accepted: below 0 in {below} of "
                    f"{n_hours} hours)")
     if int(server["rounds_held"]):
@@ -188,19 +188,15 @@ def _load_figures(r: RunFolder) -> list[list[Any]]:
 
 
 def _load_chart(r: RunFolder, checkins: np.ndarray, warm: int) -> Chart:
-    hourly, load, server, rounds = r.tables["hourly"], r.summary["load"], r.summary["server_load"], r.summary["rounds"]
-    counted = server["basis"] == "counted"
+    hourly, load, rounds = r.tables["hourly"], r.summary["load"], r.summary["rounds"]
     extra = [("Share of check-ins turned away", "turned away", column(hourly, "turned_away_share"), "pct")]
     if rounds["pacing"]:
         extra.append(("Time rounds were held, by the hour they opened", "minutes", column(hourly, "held_s") / 60.0,
                       "num"))
     if int(rounds["in_flight"]) > 1:
         extra.append(("Rounds open at once (mean over the hour)", "rounds", column(hourly, "rounds_open"), "num"))
-    title = ("Check-ins the pacing server answered (counted, mean per hour)" if counted
-             else "Check-ins reaching the server (estimated from the census, mean per hour)")
-    basis = ("Check-ins per second: check-ins the server answered in the hour, accepted or not, / the hour's "
-             "seconds; turned away: 1 - accepted / answered." if counted else
-             "Check-ins per second: mean eligible, free devices in the hour / "
+    title = "Check-ins reaching the server (estimated from the census, mean per hour)"
+    basis = ("Check-ins per second: mean eligible, free devices in the hour / "
              + ("(pacing stretch x check-in interval)" if rounds["pacing"] else "check-in interval")
              + ", an estimate from the census, as the server does not count check-ins one by one; turned away: "
              "1 - devices accepted / those check-ins. The census counts the devices waiting to check in, so when "

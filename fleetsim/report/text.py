@@ -32,7 +32,7 @@ def status_counts(rounds: dict[str, Any]) -> dict[str, int]:
     return {"committed": int(rounds["committed"]), **{k: int(v) for k, v in rounds["ended_by"].items()}}
 
 
-BASIS_WORDS = {"counted": "counted by the pacing server", "estimated": "estimated from the census"}
+BASIS_WORDS = {"estimated": "estimated from the census"}
 """How the check-in figures were obtained (summary.json ``server_load.basis``), in words."""
 
 GROUPING_LABELS = {"device_type": "device type", "region": "region", "data_quartile": "data-size quartile"}
