@@ -60,9 +60,7 @@ class BatteryState:
         table = 100.0 * special.betaincinv(laws[:, 0, None], laws[:, 1, None], u)
         self.quantiles = table[which.reshape(-1)].reshape(n_groups, 2, Z_GRID.size)
         self.min_battery = config.workload.min_battery
-        floor = self.min_battery / 100.0
-        # The score below which a level falls short of the workload's minimum, [G, 2].
-        self.z_floor = special.ndtri(special.betainc(self.params[..., 0], self.params[..., 1], floor))
+        self._floors: dict[float, np.ndarray] = {}
         self.score = np.zeros(group.size)
         self.since = np.full(group.size, np.nan)
 
@@ -97,11 +95,21 @@ class BatteryState:
         self.score[devices] = np.clip(special.ndtri(u), Z_GRID[0], Z_GRID[-1])
         self.since[devices] = t
 
-    def ok_probability(self, devices: np.ndarray, t: np.ndarray, charging: bool) -> np.ndarray:
+    def z_floor(self, min_battery: float) -> np.ndarray:
+        """The score below which a level falls short of ``min_battery`` (%), [G, 2]."""
+        if min_battery not in self._floors:
+            floor = min_battery / 100.0
+            self._floors[min_battery] = special.ndtri(special.betainc(self.params[..., 0], self.params[..., 1], floor))
+        return self._floors[min_battery]
+
+    def ok_probability(self, devices: np.ndarray, t: np.ndarray, charging: bool,
+                       min_battery: float | None = None) -> np.ndarray:
         """Probability that a look at ``t`` with this charging state finds the level at or above
-        the workload's minimum, given the history (nothing drawn or recorded)."""
+        ``min_battery`` (%; default the workload's minimum), given the history (nothing drawn
+        or recorded)."""
         w = self._weight(devices, t)
-        floor = self.z_floor[self.group[devices], int(charging)]
+        least = self.min_battery if min_battery is None else min_battery
+        floor = self.z_floor(least)[self.group[devices], int(charging)]
         spread = np.sqrt(1.0 - w * w)
         mean = w * self.score[devices]
         with np.errstate(divide="ignore", invalid="ignore"):

@@ -45,14 +45,49 @@ def _load_line(load: dict[str, Any] | None) -> str:
             f"{_pct(load['turned_away_share'])} turned away" + held)
 
 
-def render_summary(summary: dict[str, Any]) -> str:
-    """The short plain-text summary ``fleetsim run`` prints."""
-    r, w, b = summary["rounds"], summary["waste"], summary["bias"]
-    d = r["duration_s"]
-    lines = [
+def _header(summary: dict[str, Any]) -> list[str]:
+    return [
         f"{summary['scenario']}",
         f"  seed {summary['seed']}, config {summary['config_hash']}, {summary['devices']:,} devices, "
         f"{summary['simulated_hours']:g} simulated hours from {summary['horizon_start']}, policy {summary['policy']}",
+    ]
+
+
+def _sharing_lines(summary: dict[str, Any]) -> list[str]:
+    """How several workloads shared the desk and the devices."""
+    sharing = summary["sharing"]
+    names = sharing["workloads"]
+    if sharing["rule"] == "shares":
+        rule = "shares " + ", ".join(f"{name} {_pct(sharing['shares'][name])}" for name in names)
+    else:
+        rule = "priority " + " > ".join(names)
+    desk = ", ".join(f"{name} {_pct(sharing['desk_share'][name])}" for name in names)
+    return [
+        f"workloads: {len(names)} sharing check-ins by {rule}; selections held the desk: {desk} of the time",
+        f"  {_pct(sharing['reported_for_several'])} of the {sharing['reporting_devices']:,} reporting devices "
+        "reported for more than one workload",
+    ]
+
+
+def render_summary(summary: dict[str, Any]) -> str:
+    """The short plain-text summary ``fleetsim run`` prints (one block per workload when there
+    are several, after how they shared the fleet)."""
+    lines = _header(summary)
+    if "workloads" not in summary:
+        return "\n".join(lines + _workload_lines(summary) + [f"caution: {summary['caution']}"])
+    lines += _sharing_lines(summary)
+    for name, part in summary["workloads"].items():
+        lines.append(f"workload {name}:")
+        lines += ["  " + line for line in _workload_lines(part)]
+    lines.append(f"caution: {summary['caution']}")
+    return "\n".join(lines)
+
+
+def _workload_lines(summary: dict[str, Any]) -> list[str]:
+    """Rounds, load, waste and participation of one workload."""
+    r, w, b = summary["rounds"], summary["waste"], summary["bias"]
+    d = r["duration_s"]
+    lines = [
         f"rounds: {r['committed']} committed of {r['attempted']} ({r['committed_per_hour']:.2f} per hour); "
         + _ended_by(r["ended_by"]),
     ]
@@ -83,13 +118,20 @@ def render_summary(summary: dict[str, Any]) -> str:
             f"  {name:<18} {_pct(v['fleet_share']):>7} {_pct(v['eligible_share']):>9} "
             f"{_pct(v['report_share']):>8} {_pct(v['weight_share']):>7} {ratio:>6}"
         )
-    lines.append(f"caution: {summary['caution']}")
-    return "\n".join(lines)
+    return lines
 
 
 def summary_html(summary: dict[str, Any]) -> str:
     """A compact HTML summary (notebooks render it); names are escaped, never markup."""
     s = summary
+    if "workloads" in s:
+        head = (f"<b>{html.escape(s['scenario'])}</b> &middot; seed {s['seed']} &middot; config {s['config_hash']} "
+                f"&middot; {s['devices']:,} devices &middot; {s['simulated_hours']:g} h<br>")
+        lines = "<br>".join(html.escape(line) for line in _sharing_lines(s))
+        parts = "".join(f"<p><b>{html.escape(name)}</b></p>{summary_html({**s, **part, 'caution': ''})}"
+                        for name, part in s["workloads"].items())
+        return (f"<div class='fleetsim-summary'>{head}{lines}{parts}"
+                f"<small>{html.escape(s['caution'])}</small></div>")
     r, w, b = s["rounds"], s["waste"], s["bias"]
     rows = "".join(
         f"<tr><td>{html.escape(name)}</td><td>{_pct(v['fleet_share'])}</td><td>{_pct(v['report_share'])}</td>"

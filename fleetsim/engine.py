@@ -27,6 +27,7 @@ from .policies import make_policy
 from .record import RunRecord
 from .result import Result
 from .runtime import FleetRuntime
+from .desk import Desk
 from .server import RoundServer
 from .signals import build_signal_tables
 
@@ -67,37 +68,49 @@ def simulate(
     """
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or not 0 <= seed <= MAX_SEED:
         raise FleetsimError(f"seed: expected a whole number from 0 to 2**63 - 1 (got {seed!r})")
-    policy = make_policy(config.selection.policy, config.selection.params)
-    check_memory(config, policy.window_s, source="config")
+    jobs = config.jobs
+    policies = [make_policy(job.config.selection.policy, job.config.selection.params) for job in jobs]
+    for job, policy in zip(jobs, policies, strict=True):
+        check_memory(job.config, policy.window_s, source="config")
     rngs = {name: stream(seed, name) for name in STREAMS}
     fleet = sample_fleet(config, seed)
     horizon_s = float(config.horizon.duration)
-    rounds = config.rounds
-    tail_s = rounds.selection_timeout + rounds.report_deadline + 2 * 3600.0
+    tail_s = max(job.config.rounds.selection_timeout + job.config.rounds.report_deadline for job in jobs) + 2 * 3600.0
     warmup_s = warmup_of(config)
     tables = build_signal_tables(config, fleet.type_names, fleet.region_names, horizon_s + tail_s, -warmup_s)
-    runtime = FleetRuntime(config, fleet, tables, rngs)
-    log = EventLog()
-    env = simpy.Environment(initial_time=-warmup_s)
-    server = RoundServer(env, config, runtime, policy, log, rngs, horizon_s, on_progress)
+    paced = any(job.config.rounds.pacing is not None for job in jobs)
+    runtime = FleetRuntime(jobs[0].config, fleet, tables, rngs, paced=paced)
+    views = [runtime] if len(jobs) == 1 else [runtime.for_workload(job.config) for job in jobs]
+    logs = [EventLog() for _ in jobs]
+    servers = [RoundServer(job.config, view, policy, log, rngs)
+               for job, view, policy, log in zip(jobs, views, policies, logs, strict=True)]
+    rule = config.sharing.rule if config.sharing is not None else "priority"
+    desk = Desk(env := simpy.Environment(initial_time=-warmup_s), servers, rule, [job.share for job in jobs],
+                horizon_s, on_progress)
 
     census_times: list[float] = []
-    census_rows: list[tuple[np.ndarray, ...]] = []
+    census_rows: list[list[tuple[np.ndarray, ...]]] = [[] for _ in jobs]
 
     def census() -> Generator[Any, Any, None]:
         if env.now < 0:
             yield env.timeout(-env.now)  # count from the horizon start, after the warm-up
         while env.now < horizon_s:
-            census_rows.append(runtime.census(env.now, CENSUS_SAMPLE, CENSUS_MIN_PER_GROUP))
+            for view, rows in zip(views, census_rows, strict=True):
+                rows.append(view.census(env.now, CENSUS_SAMPLE, CENSUS_MIN_PER_GROUP))
             census_times.append(env.now)
             yield env.timeout(CENSUS_EVERY_S)
 
     env.process(census())
-    env.process(server.run())
+    env.process(desk.run())
     env.run()
 
-    census_frame = _census_frame(fleet, census_times, census_rows)
-    rounds_frame, parts_frame = _after_warmup(log.rounds(), log.participations(fleet.type_names, fleet.region_names))
+    frames = []
+    for log, rows in zip(logs, census_rows, strict=True):
+        rounds_frame, parts_frame = _after_warmup(log.rounds(), log.participations(fleet.type_names, fleet.region_names))
+        frames.append((parts_frame, rounds_frame, _census_frame(fleet, census_times, rows)))
+    names = [job.name for job in jobs]
+    parts_frame, rounds_frame, census_frame = (
+        frames[0] if len(jobs) == 1 else (_by_workload([f[i] for f in frames], names) for i in range(3)))
     record = RunRecord(
         config=config,
         seed=seed,
@@ -105,16 +118,31 @@ def simulate(
         participations=parts_frame,
         rounds=rounds_frame,
         census=census_frame,
-        policy=getattr(policy, "name", type(policy).__name__),
+        policy=_policy_name(policies[0]) if len(jobs) == 1 else ", ".join(
+            f"{name}: {_policy_name(policy)}" for name, policy in zip(names, policies, strict=True)),
+        policies={name: _policy_name(policy) for name, policy in zip(names, policies, strict=True)},
     )
     return Result(record)
 
 
+def _policy_name(policy: object) -> str:
+    return str(getattr(policy, "name", type(policy).__name__))
+
+
+def _by_workload(frames: list[pd.DataFrame], names: list[str]) -> pd.DataFrame:
+    """One frame of several workloads' frames, led by a ``workload`` column (a label)."""
+    joined = pd.concat(frames, ignore_index=True)
+    codes = np.repeat(np.arange(len(names)), [len(frame) for frame in frames])
+    joined.insert(0, "workload", pd.Categorical.from_codes(codes, names))
+    return joined
+
+
 def warmup_of(config: Config) -> float:
-    """The warm-up before the horizon start, s: as set, else the rest period (at most 2 days)."""
+    """The warm-up before the horizon start, s: as set, else the longest rest period (at most 2 days)."""
     if config.horizon.warmup is not None:
         return float(config.horizon.warmup)
-    return float(min(config.rounds.rest, 2 * 86400.0))
+    rest = max(job.config.rounds.rest for job in config.jobs)
+    return float(min(rest, 2 * 86400.0))
 
 
 def _after_warmup(rounds: pd.DataFrame, parts: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:

@@ -39,6 +39,27 @@ class RunRecord:
     census: pd.DataFrame
     policy: str
     source: str | None = None
+    policies: dict[str, str] | None = None  # each workload's policy, by workload name
+
+    def for_workload(self, name: str) -> RunRecord:
+        """The record of one workload of several: its Config (:attr:`fleetsim.config.Config.jobs`)
+        and its rows of each table, without the ``workload`` column. A run of one workload
+        is its own record."""
+        jobs = {job.name: job for job in self.config.jobs}
+        if name not in jobs:
+            raise KeyError(f"no workload {name!r}; the run has {', '.join(jobs)}")
+        if "workload" not in self.rounds.columns:
+            return self
+
+        def rows(frame: pd.DataFrame) -> pd.DataFrame:
+            mine = frame[frame["workload"].to_numpy() == name]
+            return mine.drop(columns="workload").reset_index(drop=True)
+
+        return RunRecord(
+            config=jobs[name].config, seed=self.seed, fleet=self.fleet,
+            participations=rows(self.participations), rounds=rows(self.rounds), census=rows(self.census),
+            policy=(self.policies or {}).get(name, self.policy), source=self.source,
+        )
 
     @property
     def config_hash(self) -> str:

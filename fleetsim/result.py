@@ -50,9 +50,9 @@ class Result:
     first use (e.g. ``source``, the fleet file the summary names) is not reflected in them.
     """
 
-    def __init__(self, record: RunRecord):
+    def __init__(self, record: RunRecord, metrics: Metrics | None = None):
         self.record = record
-        self._metrics: Metrics | None = None
+        self._metrics = metrics
 
     # The record's fields, read and written through (one copy of each table).
     config: _Field[Config] = _Field()
@@ -87,13 +87,24 @@ class Result:
         """Derived tables by name (rounds, waste, bias, hourly, participation counts)."""
         return self._computed().tables
 
+    @property
+    def workloads(self) -> dict[str, Result]:
+        """Each workload's own Result by name: with several workloads, its rows of the record
+        and its figures; a run of one workload holds only itself (under its name)."""
+        metrics = self._computed()
+        if not metrics.workloads:
+            return {self.config.jobs[0].name: self}
+        return {name: Result(self.record.for_workload(name), part) for name, part in metrics.workloads.items()}
+
     def _repr_html_(self) -> str:
         return summary_html(self.summary)
 
     def __repr__(self) -> str:
         s = self.summary
-        r = s["rounds"]
+        parts = s["workloads"] if "workloads" in s else {"": s}
+        committed = ", ".join(f"{name + ' ' if name else ''}{p['rounds']['committed']}/{p['rounds']['attempted']}"
+                              for name, p in parts.items())
         return (
             f"<Result seed={self.seed} devices={s['devices']} hours={s['simulated_hours']:g} "
-            f"rounds committed={r['committed']}/{r['attempted']}>"
+            f"rounds committed={committed}>"
         )

@@ -16,6 +16,8 @@ the charging state, with memory of the last look) is at or above the workload's 
 
 from __future__ import annotations
 
+import copy
+
 import numpy as np
 
 from .battery import BatteryState
@@ -33,7 +35,8 @@ _CHARGING = SIGNALS.index("charging")
 class FleetRuntime:
     """Dynamic per-device state and the queries the server makes of the fleet."""
 
-    def __init__(self, config: Config, fleet: Fleet, tables: SignalTables, rngs: dict[str, np.random.Generator]):
+    def __init__(self, config: Config, fleet: Fleet, tables: SignalTables, rngs: dict[str, np.random.Generator],
+                 paced: bool | None = None):
         self.config = config
         self.fleet = fleet
         self.tables = tables
@@ -42,31 +45,47 @@ class FleetRuntime:
         self.checkin_every = config.rounds.checkin_every
         self.order = np.argsort(fleet.checkin_phase_s, kind="stable")
         self.sorted_phase = fleet.checkin_phase_s[self.order]
-        self.capable = fleet.memory_bytes >= config.workload.memory_needed
         self.free_at = np.full(n, -np.inf)
         # Paced runs (fleetsim.pacing): a turned-away device stays away ``stretch`` check-in
         # periods, so it checks in only at the ticks k with (k + pace_offset) % stretch == 0.
         self.stretch = 1
         self.pace_offset = (
-            rngs["pacing"].integers(0, 2**20, size=n) if config.rounds.pacing is not None else np.zeros(n, np.int64)
+            rngs["pacing"].integers(0, 2**20, size=n)
+            if (config.rounds.pacing is not None if paced is None else paced) else np.zeros(n, np.int64)
         )
         self.last_participation = np.full(n, -np.inf)
         self.participations = np.zeros(n, dtype=np.int32)
         self.group = fleet.group
+        self._set_workload(config)
         # Devices by (type, region) group, for the stratified census.
         n_groups = len(fleet.type_names) * len(fleet.region_names)
         self.by_group = np.argsort(self.group, kind="stable")
         self.group_size = np.bincount(self.group, minlength=n_groups)
         self.group_start = np.concatenate([[0], np.cumsum(self.group_size)[:-1]])
         self.signals = SignalState(tables, self.group)
+        self.battery = BatteryState(config, fleet.type_names, fleet.region_names, self.group)
+
+    def _set_workload(self, config: Config) -> None:
+        """What eligibility and ranking read of the workload: memory, signals, battery, task time."""
+        fleet = self.fleet
+        self.config = config
+        self.capable = fleet.memory_bytes >= config.workload.memory_needed
         self.required = [SIGNALS.index(s) for s in config.workload.requires]
         self.min_battery = config.workload.min_battery
-        self.battery = BatteryState(config, fleet.type_names, fleet.region_names, self.group)
         # Each device's task time without disruptions (what a policy may rank by), s.
         download_s, train_s, upload_s = task_times(
             config.workload, fleet.down_mbps, fleet.up_mbps, fleet.samples, fleet.sample_cost_s
         )
         self.predicted_s = download_s + train_s + upload_s
+
+    def for_workload(self, config: Config) -> FleetRuntime:
+        """The fleet as one workload of several sees it: the same devices, chains, battery
+        levels and busy and rest times (a device busy or resting for one workload is so for
+        all), with this workload's requirements, task times, rest and pacing stretch."""
+        view = copy.copy(self)
+        view._set_workload(config)
+        view.stretch = 1
+        return view
 
     # ------------------------------------------------------------------ check-in ticks
 
@@ -288,8 +307,8 @@ class FleetRuntime:
         q = signals.probabilities(devices, chains, times)  # one pass over every chain that matters
         own = {s: q[chains.index(1 + s)] for s in needed}
         q_settled = q[0] if self.tables.has_settled else np.zeros(devices.size)
-        ok_on = battery.ok_probability(devices, times, True)
-        ok_off = battery.ok_probability(devices, times, False)
+        ok_on = battery.ok_probability(devices, times, True, self.min_battery)
+        ok_off = battery.ok_probability(devices, times, False, self.min_battery)
         total = np.zeros(devices.size)
         for settled, weight in ((False, 1.0 - q_settled), (True, q_settled)):
             prob = weight.copy()

@@ -1,4 +1,4 @@
-"""The server's round protocol as simpy processes.
+"""One workload's round protocol, a round at a time (opened by :mod:`fleetsim.desk`).
 
 A round opens; it accepts check-ins per the selection policy until
 ``ceil(target_reports * over_selection)`` are accepted or the selection timeout passes (with
@@ -19,17 +19,13 @@ first eligible tick, however often it ticks in the window), from acceptance it i
 its participation ends and its rest is over, and the engine refuses a policy's choice that
 names a device twice or one the round already holds (FleetsimError).
 
-simpy drives only these server-side events; each cohort's tasks are resolved in bulk
+simpy drives only the desk's openings; each round and its cohort's tasks are resolved in bulk
 (:mod:`fleetsim.client`).
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable, Generator
-from typing import Any
-
 import numpy as np
-import simpy
 
 from .client import Cohort, resolve_cohort
 from .config import Config
@@ -47,27 +43,21 @@ _UNMASKING = PHASES.index("unmasking")
 
 
 class RoundServer:
-    """Runs rounds back to back from the horizon start until it ends."""
+    """One workload's rounds: each opened by :class:`fleetsim.desk.Desk`, run and logged whole."""
 
     def __init__(
         self,
-        env: simpy.Environment,
         config: Config,
         runtime: FleetRuntime,
         policy: SelectionPolicy,
         log: EventLog,
         rngs: dict[str, np.random.Generator],
-        horizon_s: float,
-        on_progress: Callable[[float], None] | None = None,
     ):
-        self.env = env
         self.config = config
         self.runtime = runtime
         self.policy = policy
         self.log = log
         self.rngs = rngs
-        self.horizon_s = horizon_s
-        self.on_progress = on_progress
         shares = np.array(config.fleet.joint_mix()).sum(axis=1)  # the fleet's type mix, every region's own
         self.type_shares = shares / shares.sum()
         self.outages = sorted(
@@ -79,54 +69,21 @@ class RoundServer:
 
     # -------------------------------------------------------------------------- helpers
 
-    def _outage_at(self, t: float) -> tuple[float, float] | None:
+    def outage_at(self, t: float) -> tuple[float, float] | None:
+        """The server outage under way at ``t`` (start, end), or None."""
         for start, end in self.outages:
             if start <= t < end:
                 return start, end
         return None
 
-    def _next_outage_after(self, t: float) -> float:
+    def next_outage_after(self, t: float) -> float:
+        """When the next server outage after ``t`` starts (inf: none)."""
         starts = [start for start, _ in self.outages if start > t]
         return min(starts) if starts else np.inf
 
-    def run(self) -> Generator[Any, Any, None]:
-        """The server process: open rounds until the horizon ends.
-
-        A round holds a slot from its opening to its end plus the aggregation time; at most
-        ``in_flight`` slots are held at once, and the next round opens once the previous one's
-        selection has ended and a slot is free. With pacing the server first answers the
-        check-ins since its last look and holds the round while it is predicted not to fill."""
-        env = self.env
-        rounds = self.config.rounds
-        busy: list[float] = []  # when each round in flight frees its slot
-        while env.now < self.horizon_s:
-            outage = self._outage_at(env.now)
-            if outage is not None:
-                yield env.timeout(outage[1] - env.now)
-                continue
-            held = 0.0
-            if self.pacer is not None:
-                # Hold while the round is predicted not to fill, looking again every recheck.
-                while not self.pacer.ready() and env.now < self.horizon_s and self._outage_at(env.now) is None:
-                    step = min(self.pacer.recheck, self._next_outage_after(env.now) - env.now)
-                    self.pacer.look(env.now, env.now + step)
-                    yield env.timeout(step)
-                    held += step
-                if env.now >= self.horizon_s or self._outage_at(env.now) is not None:
-                    continue
-                self.pacer.set_stretch()
-            selected_at, ended = self._round(env.now, held)
-            busy = [b for b in busy if b > selected_at] + [ended + rounds.aggregation_time]
-            next_open = max(selected_at, env.now)
-            while sum(b > next_open for b in busy) >= rounds.in_flight:
-                next_open = min(b for b in busy if b > next_open)
-            yield env.timeout(next_open - env.now)
-            if self.on_progress is not None:
-                self.on_progress(max(env.now, 0.0))
-
     # -------------------------------------------------------------------------- one round
 
-    def _round(self, opened: float, held_s: float) -> tuple[float, float]:
+    def open_round(self, opened: float, held_s: float) -> tuple[float, float]:
         """Run one round from ``opened`` (after it was held ``held_s``); log it; return when its
         selection ended and when it ended (its close, or with secure aggregation the end of the
         unmasking)."""
@@ -135,7 +92,7 @@ class RoundServer:
         index = self.round_index
         self.round_index += 1
         # An outage cuts the selection short (the round is then lost at the outage start).
-        timeout_at = min(opened + rounds.selection_timeout, self._next_outage_after(opened))
+        timeout_at = min(opened + rounds.selection_timeout, self.next_outage_after(opened))
         picked = self.selector.select(opened, index, timeout_at)
         if self.pacer is not None:
             self.pacer.met(picked.selected_at - opened, picked.met)
@@ -150,7 +107,7 @@ class RoundServer:
         cohort = self._resolve(devices, start_s, checkin_s, charging, battery, wait_s)
         # after-selection: a round abandoned at selection (too few accepted, or cut by an
         # outage) starts no task.
-        cut = self._next_outage_after(opened) <= selected_at
+        cut = self.next_outage_after(opened) <= selected_at
         started = not after or (enough and not cut)
         report_at = start_s + np.where(np.isinf(cohort.drop_at) & started, cohort.task_s, np.inf)
         closed, lost = self._close_at(opened, selected_at, report_at, enough)
@@ -258,7 +215,7 @@ class RoundServer:
             closed = max(min(deadline_at, kth), selected_at)
         else:
             closed = selected_at  # ended by the selection timeout
-        outage_start = self._next_outage_after(opened)
+        outage_start = self.next_outage_after(opened)
         lost = bool(outage_start <= closed)
         return (float(outage_start) if lost else float(closed)), lost
 

@@ -136,3 +136,41 @@ def test_the_invariant_check_catches_an_acceptance_during_rest() -> None:
     except AssertionError:
         return
     raise AssertionError("an acceptance during the rest period passed the invariant check")
+
+
+@st.composite
+def shared_fleets(draw: st.DrawFn) -> tuple[dict, list[str], int]:
+    """Two or three workloads on one small fleet: random requirements, round sizes, rests,
+    rounds in flight and sharing rule (the rest as :func:`scenarios` draws it)."""
+    overrides, seed = draw(scenarios())
+    rule = draw(st.sampled_from(["priority", "shares"]))
+    entries = {}
+    for i in range(draw(st.integers(2, 3))):
+        target = draw(st.integers(3, 30))
+        entries[f"w{i}"] = {
+            "workload": {"requires": draw(st.lists(st.sampled_from(SIGNALS), unique=True, max_size=len(SIGNALS)))},
+            "rounds": {"target_reports": target, "min_reports": draw(st.integers(1, target)),
+                       "rest": f"{draw(st.sampled_from([0, 300, 3600]))}s", "in_flight": draw(st.integers(1, 3))},
+            **({"share": draw(st.integers(1, 4))} if rule == "shares" else {}),
+        }
+    return {"workloads": entries, "sharing": {"rule": rule}}, overrides, seed
+
+
+@settings(max_examples=15, deadline=None, derandomize=True, suppress_health_check=[HealthCheck.too_slow])
+@given(shared_fleets())
+def test_invariants_hold_for_each_workload_and_across_them(fleet: tuple[dict, list[str], int]) -> None:
+    import yaml
+
+    extra, overrides, seed = fleet
+    raw = {**yaml.safe_load(fleetsim.example_path().read_text()), **extra}
+    result = fleetsim.simulate(fleetsim.build_config(raw, overrides=overrides), seed=seed)
+    for part in result.workloads.values():
+        _check(part)
+    # Across workloads: one round at a time, and the rest of the workload it last took part in.
+    rest = {job.name: job.config.rounds.rest for job in result.config.jobs}
+    ordered = result.participations.sort_values(["device", "accepted_s"], kind="stable")
+    same = ordered["device"].to_numpy()[1:] == ordered["device"].to_numpy()[:-1]
+    free = ordered["ended_s"].to_numpy() + ordered["workload"].map(rest).to_numpy(dtype=float)
+    assert (ordered["accepted_s"].to_numpy()[1:][same] >= free[:-1][same] - EPS).all()
+    rounds = result.rounds.sort_values("opened_s", kind="stable")
+    assert (rounds["opened_s"].to_numpy()[1:] >= rounds["selected_s"].to_numpy()[:-1] - EPS).all()

@@ -55,7 +55,9 @@ def run(
     except FleetsimError as exc:
         fail(exc)
     typer.echo(render_summary(result.summary))
-    typer.echo(f"wrote {out}/summary.json, events.parquet, tables/" + (", report.html, report.md" if report else ""))
+    several = ", workloads/ (one run folder per workload)" if len(result.workloads) > 1 else ""
+    typer.echo(f"wrote {out}/summary.json, events.parquet, tables/" + several
+               + (", report.html, report.md" if report else ""))
 
 
 def check(

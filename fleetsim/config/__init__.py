@@ -35,6 +35,7 @@ from .fields import (
     Trait,
 )
 from .fleetspec import MAX_NAME_LENGTH, WEEKDAYS, FleetSpec, Region, name_problem
+from .jobs import MAIN, Job, merge_sections
 from .loading import apply_overrides, build_config, config_hash, config_schema, example_path, load_config
 from .memory import check_memory, estimate_memory, memory_limit
 from .models import (
@@ -46,7 +47,9 @@ from .models import (
     Horizon,
     RoundSettings,
     Selection,
+    Sharing,
     Workload,
+    WorkloadEntry,
 )
 from .protocol import WEIGHT_BYTES, Pacing, SecureAggregation, UpdateEncoding
 from .yamltext import MAX_DEPTH, MAX_FILE_BYTES, MAX_NODES, load_yaml_text, read_yaml, structure_problem
@@ -79,6 +82,11 @@ __all__ = [
     "Region",
     "FleetSpec",
     "Workload",
+    "WorkloadEntry",
+    "Sharing",
+    "Job",
+    "MAIN",
+    "merge_sections",
     "UpdateEncoding",
     "WEIGHT_BYTES",
     "RoundSettings",

@@ -33,6 +33,7 @@ from .fields import (
     _Strict,
 )
 from .fleetspec import FleetSpec, name_problem
+from .jobs import MAIN, Job, merge_sections
 from .protocol import Pacing, SecureAggregation, UpdateEncoding
 from .yamltext import structure_problem
 
@@ -222,6 +223,23 @@ class Disruption(_Strict):
         return self
 
 
+class WorkloadEntry(_Strict):
+    """One of several workloads on one fleet (``workloads.NAME``): its workload, round settings
+    and selection, each merged key by key over the file's top-level section of that name
+    (:func:`merge_sections`), and under ``sharing.rule: shares`` its ``share``."""
+
+    workload: Workload
+    rounds: RoundSettings
+    selection: Selection = Selection()
+    share: Real | None = Field(default=None, gt=0, le=1e6)
+
+
+class Sharing(_Strict):
+    """How several workloads share the fleet's check-ins (docs/fleet-file.md, ``sharing``)."""
+
+    rule: Literal["priority", "shares"] = "priority"
+
+
 class Config(_Strict):
     """A whole fleet file."""
 
@@ -231,7 +249,28 @@ class Config(_Strict):
     workload: Workload
     rounds: RoundSettings
     selection: Selection = Selection()
+    workloads: dict[str, WorkloadEntry] | None = None
+    sharing: Sharing | None = None
     disruptions: list[Disruption] = Field(default_factory=list)
+
+    @model_validator(mode="before")
+    @classmethod
+    def _merge_workloads(cls, value: Any) -> Any:
+        return merge_sections(value)
+
+    @property
+    def jobs(self) -> tuple[Job, ...]:
+        """The workloads the run trains, each as a Config of one workload (:class:`Job`): the
+        ``workloads`` entries in order, or the file's own sections as one job, :data:`MAIN`."""
+        if not self.workloads:
+            return (Job(MAIN, self, 1.0),)
+        shared = {"workloads": None, "sharing": None}
+        return tuple(
+            Job(name, self.model_copy(update={"workload": entry.workload, "rounds": entry.rounds,
+                                              "selection": entry.selection, **shared}),
+                float(entry.share) if entry.share is not None else 1.0)
+            for name, entry in self.workloads.items()
+        )
 
     @field_validator("scenario")
     @classmethod
@@ -256,8 +295,43 @@ class Config(_Strict):
             raise ValueError(_at("workload.update_encoding.keep_fraction", (
                 "secure aggregation masks a dense update, so a sparsified one cannot be summed under it: "
                 f"use keep_fraction 1 or drop rounds.secure_aggregation (got {keep:g})")))
+        _check_workloads(self)
+        for job in self.jobs if self.workloads else ():
+            _check_span(job.config)
         _check_span(self)
         return self
+
+
+def _check_workloads(config: Config) -> None:
+    """Names, sharing and the check-in period of several workloads."""
+    entries = config.workloads
+    if not entries:
+        if config.sharing is not None:
+            raise ValueError(_at("sharing", "applies to several workloads: list them under 'workloads' "
+                                 "or drop 'sharing'"))
+        return
+    rule = (config.sharing or Sharing()).rule
+    period = config.rounds.checkin_every
+    for name, entry in entries.items():
+        problem = name_problem(name)
+        if problem:
+            raise ValueError(_at("workloads", f"workload name {_show(name)} {problem}"))
+        key = f"workloads.{name}"
+        if rule == "shares" and entry.share is None:
+            raise ValueError(_at(f"{key}.share", "sharing.rule is shares: give each workload its share "
+                                 "of check-ins (a positive number; shares are relative)"))
+        if rule == "priority" and entry.share is not None:
+            raise ValueError(_at(f"{key}.share", "sharing.rule is priority (the order of 'workloads'): "
+                                 f"drop the share or set sharing.rule: shares (got {entry.share:g})"))
+        if entry.rounds.checkin_every != period:
+            raise ValueError(_at(f"{key}.rounds.checkin_every", (
+                "a device checks in on its own period whatever it trains: every workload has the file's "
+                f"rounds.checkin_every ({period:g}s) (got {entry.rounds.checkin_every:g}s)")))
+        keep = entry.workload.update_encoding.keep_fraction
+        if entry.rounds.secure_aggregation is not None and keep < 1.0:
+            raise ValueError(_at(f"{key}.workload.update_encoding.keep_fraction", (
+                "secure aggregation masks a dense update, so a sparsified one cannot be summed under it: "
+                f"use keep_fraction 1 or drop rounds.secure_aggregation (got {keep:g})")))
 
 
 MAX_TITLE_LENGTH = 200

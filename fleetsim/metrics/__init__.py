@@ -9,7 +9,7 @@ in :mod:`fleetsim.analysis` and :mod:`fleetsim.survival`.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -33,6 +33,7 @@ from .bias import BIAS_TABLES, bias_tables, participation_counts
 from .load import hourly_table, rounds_open, server_load_part
 from .rounds import closed_per_hour, round_frame
 from .secure import secure_part, unmasking_by_accepted
+from .sharing import GROUPINGS, HEADER_KEYS, competition_table, sharing_part
 from .summary import bias_map, clean, participations_part, rounds_part, waste_part
 from .waste import device_cost, dropout_table, labelled_frame, waste_by_cause, waste_by_device_type, waste_sums
 
@@ -50,10 +51,12 @@ CAUTION = (
 
 @dataclass(frozen=True)
 class Metrics:
-    """``summary``: JSON-ready figures (summary.json); ``tables``: frames by name (tables/*.csv)."""
+    """``summary``: JSON-ready figures (summary.json); ``tables``: frames by name (tables/*.csv);
+    ``workloads``: with several workloads, each one's own Metrics by name (else empty)."""
 
     summary: dict[str, Any]
     tables: dict[str, pd.DataFrame]
+    workloads: dict[str, Metrics] = field(default_factory=dict)
 
 
 def _bias_part(bias: dict[str, pd.DataFrame], chi: pd.DataFrame, counts: pd.DataFrame,
@@ -77,7 +80,31 @@ def _bias_part(bias: dict[str, pd.DataFrame], chi: pd.DataFrame, counts: pd.Data
 
 
 def compute_metrics(record: RunRecord) -> Metrics:
-    """Every table and the summary of one run, from its record (no I/O)."""
+    """Every table and the summary of one run, from its record (no I/O).
+
+    With several workloads each has the figures of a run of its own (its rows of the record),
+    under ``workloads`` of the summary and in :attr:`Metrics.workloads`; the run's own tables
+    and its ``sharing`` block say how they shared the desk and the devices (:mod:`.sharing`)."""
+    jobs = record.config.jobs
+    if len(jobs) == 1:
+        return _one_workload(record)
+    each = {job.name: _one_workload(record.for_workload(job.name)) for job in jobs}
+    tables = {f"competition_by_{grouping}": competition_table(record, grouping) for grouping in GROUPINGS}
+    first = next(iter(each.values())).summary
+    summary = {
+        **{key: first[key] for key in HEADER_KEYS},
+        "config_hash": record.config_hash,
+        "policy": record.policy,
+        "sharing": sharing_part(record, tables),
+        "workloads": {name: {key: value for key, value in m.summary.items() if key not in (*HEADER_KEYS, "caution")}
+                      for name, m in each.items()},
+        "caution": CAUTION,
+    }
+    return Metrics(summary=clean(summary), tables=tables, workloads=each)
+
+
+def _one_workload(record: RunRecord) -> Metrics:
+    """Every table and the summary of a run of one workload."""
     config, fleet, parts, census = record.config, record.fleet, record.participations, record.census
     start, horizon_s = config.horizon.start, float(config.horizon.duration)
     hours = horizon_s / 3600.0

@@ -152,6 +152,7 @@ _STUDY_FILES = {"front.csv", "study.json", "study.md", "comparison.json", "compa
                                   for ext in ("parquet", "csv"))}
 _SUBFOLDERS = {"run": {"tables": re.compile(r"[^/]+\.csv")},
                "study": {"cells": re.compile(r"[0-9a-f]+\.json"), "heatmaps": re.compile(r"[^/]+\.(png|svg)")}}
+_WORKLOADS = "workloads"  # a run of several workloads: one run folder per workload under it
 _TEMPORARY = re.compile(r"\.partial-.*|\..+\.partial")  # atomic_text, atomic_save and the report's temporary files
 
 
@@ -159,21 +160,34 @@ def _foreign(where: Path, kind: str) -> list[str]:
     """Entries of the fleetsim folder ``where`` (of ``kind``) that fleetsim would not have written."""
     group = "run" if kind == "run" else "study"
     files = _RUN_FILES if group == "run" else _STUDY_FILES
-    subfolders = _SUBFOLDERS[group]
+    return _foreign_in(where, files, _SUBFOLDERS[group], nested=group == "run")
+
+
+def _foreign_in(where: Path | str, files: set[str], subfolders: dict[str, re.Pattern[str]], nested: bool,
+                prefix: str = "") -> list[str]:
+    """:func:`_foreign` for one folder; ``nested``: it may hold ``workloads/NAME/``, each a run
+    folder of one workload (without a marker or further workloads)."""
     extra = []
     for entry in sorted(os.scandir(where), key=lambda e: e.name):
-        if entry.name == MARKER or _TEMPORARY.fullmatch(entry.name):
+        if (entry.name == MARKER and not prefix) or _TEMPORARY.fullmatch(entry.name):
             continue
         if entry.is_symlink():
-            extra.append(entry.name)
+            extra.append(prefix + entry.name)
+        elif nested and entry.name == _WORKLOADS and entry.is_dir():
+            for child in sorted(os.scandir(entry.path), key=lambda e: e.name):
+                inner = f"{prefix}{entry.name}/{child.name}"
+                if child.is_symlink() or not child.is_dir():
+                    extra.append(inner)
+                else:
+                    extra += _foreign_in(child.path, files, subfolders, False, inner + "/")
         elif entry.name in subfolders and entry.is_dir():
             pattern = subfolders[entry.name]
             for child in sorted(os.scandir(entry.path), key=lambda e: e.name):
                 if child.is_symlink() or not child.is_file() or not (
                         pattern.fullmatch(child.name) or _TEMPORARY.fullmatch(child.name)):
-                    extra.append(f"{entry.name}/{child.name}")
+                    extra.append(f"{prefix}{entry.name}/{child.name}")
         elif entry.name not in files or not entry.is_file():
-            extra.append(entry.name)
+            extra.append(prefix + entry.name)
     return extra
 
 

@@ -8,6 +8,9 @@ Layout of a run folder::
     rounds.parquet      one row per round
     census.parquet      eligible devices counted every 15 minutes by type and region
     tables/*.csv        every derived table
+    workloads/NAME/     with several workloads: each one's own run folder as above (no marker);
+                        the top level then holds every workload's events (a ``workload``
+                        column), the summary with a ``sharing`` block, and the competition tables
     .fleetsim-output    the marker: {"kind": "run", "fleetsim": version, "created": UTC time}
 """
 
@@ -27,7 +30,10 @@ if TYPE_CHECKING:
 
     from ..result import Result
 
-__all__ = ["write_run", "event_frame", "read_summary"]
+__all__ = ["write_run", "event_frame", "read_summary", "WORKLOADS"]
+
+WORKLOADS = "workloads"
+"""Subfolder of a run of several workloads: one run folder per workload (``workloads/NAME/``)."""
 
 
 def event_frame(result: Result) -> pd.DataFrame:
@@ -42,7 +48,6 @@ def event_frame(result: Result) -> pd.DataFrame:
     return frame
 
 
-
 def write_run(
     result: Result, out: str | Path, *, force: bool = False, inputs: Iterable[str | Path] = (),
     label: str | None = None, notice: Callable[[str], None] | None = None,
@@ -55,20 +60,34 @@ def write_run(
     """
 
     def fill(folder: Path) -> None:
-        (folder / "summary.json").write_text(json.dumps(result.summary, indent=2) + "\n", encoding="utf-8")
-        (folder / "config.json").write_text(
-            json.dumps(result.config.model_dump(mode="json"), indent=2) + "\n", encoding="utf-8"
-        )
-        event_frame(result).to_parquet(folder / "events.parquet", index=False)
-        result.tables["rounds"].to_parquet(folder / "rounds.parquet", index=False)
-        result.census.to_parquet(folder / "census.parquet", index=False)
-        tables = folder / "tables"
-        tables.mkdir()
-        taken: set[str] = set()
-        for name, table in result.tables.items():
-            write_csv(table, inside(folder, tables / f"{safe_name(name, taken)}.csv"))
+        _fill(result, folder)
+        parts = result.workloads
+        if len(parts) > 1:
+            taken: set[str] = set()
+            for name, part in parts.items():
+                sub = inside(folder, folder / WORKLOADS / safe_name(name, taken))
+                sub.mkdir(parents=True)
+                _fill(part, sub)
 
     return atomic_folder(Path(out), fill, kind="run", force=force, inputs=inputs, label=label, notice=notice)
+
+
+def _fill(result: Result, folder: Path) -> None:
+    """Write one result's summary, settings, event tables and derived tables into ``folder``."""
+    (folder / "summary.json").write_text(json.dumps(result.summary, indent=2) + "\n", encoding="utf-8")
+    (folder / "config.json").write_text(
+        json.dumps(result.config.model_dump(mode="json"), indent=2) + "\n", encoding="utf-8"
+    )
+    event_frame(result).to_parquet(folder / "events.parquet", index=False)
+    # The rounds table of one workload (with its derived columns); of several, the engine's rows.
+    rounds = result.tables["rounds"] if "rounds" in result.tables else result.rounds
+    rounds.to_parquet(folder / "rounds.parquet", index=False)
+    result.census.to_parquet(folder / "census.parquet", index=False)
+    tables = folder / "tables"
+    tables.mkdir()
+    taken: set[str] = set()
+    for name, table in result.tables.items():
+        write_csv(table, inside(folder, tables / f"{safe_name(name, taken)}.csv"))
 
 
 def read_summary(run_dir: str | Path) -> dict:
