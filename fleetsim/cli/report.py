@@ -15,7 +15,11 @@ __all__ = ["report"]
 def report(
     run_dir: Path = typer.Argument(..., help="A run folder written by 'fleetsim run --out'.", show_default=False),
 ) -> None:
-    """Write report.html (one self-contained page) and report.md into RUN_DIR."""
+    """Write report.html (one self-contained page) and report.md into RUN_DIR.
+
+    A run of several workloads gets one report of them all: how they shared the fleet, then
+    each workload's own report.
+    """
     from ..report import write_report  # imported here: the report's libraries load only for this command
 
     try:

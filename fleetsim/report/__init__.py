@@ -2,7 +2,9 @@
 
 The report reads only the run folder (summary.json, config.json, events.parquet and
 tables/*.csv, as :func:`fleetsim.output.write_run` writes them) and answers, section by
-section, the questions a team asks of a run; docs/report.md describes every section.
+section, the questions a team asks of a run; docs/report.md describes every section. A run
+of several workloads gets one report: how they shared the fleet, then each workload's own
+report from its run folder under ``workloads/``, then the caution.
 """
 
 from __future__ import annotations
@@ -10,13 +12,16 @@ from __future__ import annotations
 import os
 import uuid
 import warnings
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 
 from ..errors import FleetsimError
-from .markdown import render_markdown
-from .page import render_html
+from .markdown import render_markdown, render_markdown_several
+from .page import render_html, render_html_several
 from .rundir import read_run_folder
-from .sections import build_sections
+from .sections import build_sections, build_several
+from .several import is_several, read_several_folder
 
 __all__ = ["write_report", "render_report"]
 
@@ -30,18 +35,40 @@ def _version() -> str:
 def render_report(run_dir: str | Path) -> tuple[str, str]:
     """The report of a run folder as (HTML, Markdown) text, written nowhere.
 
-    Raises FleetsimError when ``run_dir`` is not a readable run folder.
+    A run of several workloads (summary.json with ``sharing`` and ``workloads``) opens with
+    how the workloads shared the fleet, then holds each workload's whole report, read from
+    its run folder under ``workloads/``. Raises FleetsimError when ``run_dir`` is not a
+    readable run folder.
     """
+    if is_several(run_dir):
+        return _render_several(run_dir)
     folder = read_run_folder(run_dir)
-    with warnings.catch_warnings():
-        # A name with a character the figure font lacks is drawn as a box in the figure (the
-        # tables beside it show it whole); that is not worth a warning per glyph.
-        warnings.filterwarnings("ignore", message=r"Glyph \d+ .*missing from font", category=UserWarning)
+    with _quiet_glyphs():
         sections = build_sections(folder)
     name = folder.path.resolve().name
     version = _version()
     return (render_html(sections, folder.summary, name, version),
             render_markdown(sections, folder.summary, name, version))
+
+
+def _render_several(run_dir: str | Path) -> tuple[str, str]:
+    """The report of a run folder of several workloads as (HTML, Markdown)."""
+    folder = read_several_folder(run_dir)
+    with _quiet_glyphs():
+        opening, parts, closing = build_several(folder)
+    name = folder.path.resolve().name
+    version = _version()
+    return (render_html_several(opening, parts, closing, folder.summary, name, version),
+            render_markdown_several(opening, parts, closing, folder.summary, name, version))
+
+
+@contextmanager
+def _quiet_glyphs() -> Iterator[None]:
+    with warnings.catch_warnings():
+        # A name with a character the figure font lacks is drawn as a box in the figure (the
+        # tables beside it show it whole); that is not worth a warning per glyph.
+        warnings.filterwarnings("ignore", message=r"Glyph \d+ .*missing from font", category=UserWarning)
+        yield
 
 
 def _write_both(targets: list[tuple[Path, str]]) -> None:

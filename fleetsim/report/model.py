@@ -10,7 +10,7 @@ import math
 from dataclasses import dataclass, field
 from typing import Any
 
-__all__ = ["Column", "Table", "Chart", "Tile", "Section", "Cell", "format_value", "raw_value"]
+__all__ = ["Column", "Table", "Chart", "Tile", "Section", "Part", "Cell", "format_value", "raw_value"]
 
 
 @dataclass(frozen=True)
@@ -73,6 +73,20 @@ class Section:
     tables: list[Table] = field(default_factory=list)
     tiles: list[Tile] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
+
+
+@dataclass(frozen=True)
+class Part:
+    """One workload's whole report inside the report of a run of several workloads.
+
+    ``id`` is the prefix its sections' ids carry (unique on the page); ``name`` is the
+    workload's name from the fleet file; ``intro`` says where its numbers come from.
+    """
+
+    id: str
+    name: str
+    intro: str
+    sections: list[Section]
 
 
 def _missing(value: Any) -> bool:

@@ -11,7 +11,7 @@ from .model import Cell, Chart, Column, Section, Table, Tile, format_value
 from .rundir import RunFolder
 from .text import BASIS_WORDS, STATUS_WORDS, STATUSES, hour_text, num, opt, pct, seconds, status_counts
 
-__all__ = ["run_section", "headline_section", "caution_section"]
+__all__ = ["run_section", "headline_section", "caution_section", "caution_of"]
 
 
 def _caps(r: RunFolder) -> str:
@@ -229,7 +229,11 @@ def headline_section(r: RunFolder) -> Section:
 
 def caution_section(r: RunFolder) -> Section:
     """How far can these figures be trusted? The caution with the run's identity."""
-    s = r.summary
+    return caution_of(r.summary)
+
+
+def caution_of(s: dict[str, Any]) -> Section:
+    """The caution section from a summary.json (of one workload or of several)."""
     return Section("caution", "How far can these figures be trusted?", s["caution"],
                    notes=[f"Seed {s['seed']}, configuration {s['config_hash']}, scenario {s['scenario']}. Rerun with "
                           "other seeds to see how much the figures move by chance alone; the 95% intervals above "

@@ -12,10 +12,10 @@ from __future__ import annotations
 import html
 from collections.abc import Iterable, Sequence
 
-from .model import Chart, Section, Table, format_value, raw_value
+from .model import Chart, Part, Section, Table, format_value, raw_value
 from .style import COLOURS, MEANINGS, swatch_css
 
-__all__ = ["render_html", "Markup", "esc"]
+__all__ = ["render_html", "render_html_several", "Markup", "esc"]
 
 CSP = "default-src 'none'; style-src 'unsafe-inline'; img-src data:; base-uri 'none'; form-action 'none'"
 
@@ -150,9 +150,9 @@ def _chart(chart: Chart, label: str) -> Markup:
                data_figure=label)
 
 
-def _section(number: int, section: Section) -> Markup:
+def _section(number: int | str, section: Section, level: int = 2) -> Markup:
     parts: list[object] = [
-        tag("h2", tag("span", f"{number}", class_="qn"), section.question, id=f"h-{section.id}"),
+        tag(f"h{level}", tag("span", f"{number}", class_="qn"), section.question, id=f"h-{section.id}"),
         tag("p", section.answer, class_="answer"),
     ]
     if section.tiles:
@@ -174,43 +174,104 @@ def _section(number: int, section: Section) -> Markup:
                class_="caution" if section.id == "caution" else None)
 
 
-def render_html(sections: Sequence[Section], summary: dict, run_name: str, version: str) -> str:
-    """The whole page as a string."""
-    scenario = summary["scenario"]
+def _masthead(summary: dict, more: Sequence[tuple[str, str]] = ()) -> Markup:
     facts = [
         ("seed", str(summary["seed"])),
         ("configuration", str(summary["config_hash"])),
         ("devices", f"{int(summary['devices']):,}"),
         ("horizon", f"{summary['simulated_hours']:g} h from {summary['horizon_start']}"),
         ("policy", str(summary["policy"])),
+        *more,
     ]
-    masthead = tag("header", tag("div",
+    return tag("header", tag("div",
         tag("p", "fleetsim \u00b7 fleet participation report", class_="kicker"),
-        tag("h1", scenario),
+        tag("h1", summary["scenario"]),
         tag("p", join(tag("span", f"{k} ", tag("b", v)) for k, v in facts), class_="facts"),
         tag("p", "Simulated figures from a model of a fleet, not measurements: read ",
             tag("a", "the caution", href="#s-caution"), " before acting on them.", class_="model-note"),
         class_="wrap"), class_="masthead")
+
+
+def _document(summary: dict, masthead: Markup, questions: Markup, main: Markup, footer: str, version: str,
+              css: str = CSS) -> str:
+    """The page around its masthead, list of questions (``<li>`` items), main part and footer text."""
     toc = tag("nav",
         tag("p", "Questions", class_="toc-title"),
-        tag("ol", join(tag("li", tag("a", s.question, href=f"#s-{s.id}")) for s in sections)),
+        tag("ol", questions),
         tag("div", tag("p", "Colours", class_="toc-title"),
             tag("ul", join(tag("li", tag("span", "", class_="swatch", style=swatch_css(k)), MEANINGS[k])
                            for k in COLOURS)), class_="key"),
         class_="toc", aria_label="Questions")
-    main = tag("main", join(_section(i + 1, s) for i, s in enumerate(sections)))
-    footer = tag("footer", f"Written by fleetsim {version} from the run folder {run_name}. "
-                 "Every figure is drawn from the numbers in the tables beside it, which come from summary.json, "
-                 "tables/ and events.parquet in that folder.")
     head = join([
         Markup('<meta charset="utf-8">'),
         Markup(f'<meta http-equiv="Content-Security-Policy" content="{esc(CSP)}">'),
         Markup('<meta name="viewport" content="width=device-width, initial-scale=1">'),
         Markup('<meta name="color-scheme" content="light">'),
         Markup(f'<meta name="generator" content="fleetsim {esc(version)}">'),
-        tag("title", f"Fleet participation report \u00b7 {scenario}"),
+        tag("title", f"Fleet participation report \u00b7 {summary['scenario']}"),
         Markup('<link rel="icon" href="data:,">'),
-        tag("style", Markup(CSS)),
+        tag("style", Markup(css)),
     ])
-    body = join([masthead, tag("div", toc, main, class_="layout"), footer])
+    body = join([masthead, tag("div", toc, tag("main", main), class_="layout"), tag("footer", footer)])
     return "<!DOCTYPE html>\n" + tag("html", tag("head", head), tag("body", body), lang="en") + "\n"
+
+
+def _question(section: Section) -> Markup:
+    return tag("li", tag("a", section.question, href=f"#s-{section.id}"))
+
+
+def render_html(sections: Sequence[Section], summary: dict, run_name: str, version: str) -> str:
+    """The whole page as a string."""
+    main = join(_section(i + 1, s) for i, s in enumerate(sections))
+    footer = (f"Written by fleetsim {version} from the run folder {run_name}. "
+              "Every figure is drawn from the numbers in the tables beside it, which come from summary.json, "
+              "tables/ and events.parquet in that folder.")
+    return _document(summary, _masthead(summary), join(_question(s) for s in sections), main, footer, version)
+
+
+SEVERAL_CSS = """
+section.part { padding: 30px 0 0; }
+section.part > h2 { font-size: 22px; padding-bottom: 6px; border-bottom: 2px solid var(--ink); }
+section.part > .note { margin: 8px 0 0; }
+h3 { margin: 0 0 6px; font-size: 18px; line-height: 1.3; }
+h3 .qn { display: inline-block; min-width: 2.6em; color: var(--muted); font-weight: 500; }
+nav.toc ol ol { margin: 2px 0 8px 12px; }
+nav.toc li.part > a { font-weight: 600; }
+"""
+"""Style added to the page of a run of several workloads (one workload's sections nest under its heading)."""
+
+
+def _part(number: int, part: Part) -> Markup:
+    """One workload's whole report: its heading, where it comes from, then its sections one level down."""
+    inner = join(_section(f"{number}.{i + 1}", s, level=3) for i, s in enumerate(part.sections))
+    return tag("section", tag("h2", tag("span", f"{number}", class_="qn"), f"Workload: {part.name}",
+                              id=f"h-{part.id}"),
+               tag("p", part.intro, class_="note"), inner,
+               id=f"s-{part.id}", aria_labelledby=f"h-{part.id}", class_="part", data_workload=part.name)
+
+
+def render_html_several(opening: Sequence[Section], parts: Sequence[Part], closing: Sequence[Section],
+                        summary: dict, run_name: str, version: str) -> str:
+    """The page of a run of several workloads: the opening sections, each workload's report, the closing ones."""
+    main, questions = [], []
+    number = 0
+    for s in opening:
+        number += 1
+        main.append(_section(number, s))
+        questions.append(_question(s))
+    for part in parts:
+        number += 1
+        main.append(_part(number, part))
+        questions.append(tag("li", tag("a", f"Workload: {part.name}", href=f"#s-{part.id}"),
+                             tag("ol", join(_question(s) for s in part.sections)), class_="part"))
+    for s in closing:
+        number += 1
+        main.append(_section(number, s))
+        questions.append(_question(s))
+    names = [p.name for p in parts]
+    footer = (f"Written by fleetsim {version} from the run folder {run_name}. "
+              "Every figure is drawn from the numbers in the tables beside it, which come from summary.json and "
+              "tables/ in that folder and, for each workload, from summary.json, tables/ and events.parquet in its "
+              "folder under workloads/.")
+    masthead = _masthead(summary, [("workloads", f"{len(names)}: {', '.join(names)}")])
+    return _document(summary, masthead, join(questions), join(main), footer, version, CSS + SEVERAL_CSS)

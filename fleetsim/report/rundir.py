@@ -28,7 +28,7 @@ __all__ = ["RunFolder", "read_run_folder"]
 # or missing values, so a region called "NA" or "1" stays exactly what the fleet file says.
 _TEXT_COLUMNS = {"device_type", "region", "data_quartile", "cause", "dropout_cause", "dropout_phase", "status",
                  "hour_utc", "opened_utc",
-                 "day_utc", "grouping", "scope"}
+                 "day_utc", "grouping", "scope", "workload"}
 
 # Every table the report reads, with the columns it needs.
 _TABLE_COLUMNS: dict[str, tuple[str, ...]] = {

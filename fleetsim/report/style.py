@@ -17,7 +17,8 @@ import matplotlib
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
-__all__ = ["COLOURS", "MEANINGS", "HATCHES", "INK", "MUTED", "figure", "svg_of", "short", "swatch_css", "fill"]
+__all__ = ["COLOURS", "MEANINGS", "HATCHES", "INK", "MUTED", "figure", "svg_of", "prefix_ids", "short", "swatch_css",
+           "fill"]
 
 COLOURS = {
     "committed": "#009E73",  # bluish green
@@ -144,6 +145,17 @@ def svg_of(fig: Figure, prefix: str) -> str:
     head_end = text.index(">")
     head = re.sub(r'\s(width|height)="[^"]*"', "", text[:head_end])
     return head + text[head_end:]
+
+
+def prefix_ids(svg: str, prefix: str) -> str:
+    """``svg`` (from :func:`svg_of`) with ``prefix-`` before every id and every reference to one.
+
+    A page holding several workloads' reports shows the same figure once per workload; the
+    prefix keeps their ids apart.
+    """
+    text = _ID.sub(lambda m: f'id="{prefix}-{m.group(1)}"', svg)
+    text = _HREF.sub(lambda m: f'{m.group(1)}="#{prefix}-{m.group(2)}"', text)
+    return _URL.sub(lambda m: f"url(#{prefix}-{m.group(1)})", text)
 
 
 def short(name: str, limit: int = 34) -> str:

@@ -7,10 +7,11 @@ from the run folder's tables and show the same ones in the figure's data table.
 from __future__ import annotations
 
 from .groups import BIAS_SERIES, bias, cost, never_reported, participation, waste_by_cause, waste_by_type
+from .sharing import competition
 from .survival import survival
 from .time import durations, load, rounds_over_time, share_rows
 
 __all__ = [
     "share_rows", "rounds_over_time", "durations", "waste_by_cause", "waste_by_type", "bias", "BIAS_SERIES",
-    "participation", "never_reported", "survival", "cost", "load",
+    "participation", "never_reported", "survival", "cost", "load", "competition",
 ]
