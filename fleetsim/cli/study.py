@@ -93,8 +93,9 @@ def sweep(
     stress: Path | None = typer.Option(
         None, "--stress", help="YAML file with a 'disruptions:' list added to every cell."
     ),
-    maximise: str | None = typer.Option(None, "--maximise", help="Metric (a study column, e.g. "
-                                        "rounds_committed_per_hour, the default) the recommendation maximises."),
+    maximise: str | None = typer.Option(None, "--maximise", help="Metric (a study column) the recommendation "
+                                        "maximises; default rounds_committed_per_hour, or with several "
+                                        "workloads study_rounds_committed_per_hour (their sum)."),
     minimise: str | None = typer.Option(None, "--minimise", help="Metric the recommendation minimises instead."),
     limit: list[str] = typer.Option([], "--limit", help="A bound the recommended cell's mean must meet: "
                                     "METRIC<=VALUE or METRIC>=VALUE, e.g. waste_compute_fraction<=0.3 "
@@ -112,7 +113,7 @@ def sweep(
     from ..study.executors import make_executor
     from ..study.recommend import Objective, parse_limit
     from ..study.settings import parse_axis
-    from ..study.sweep import DEFAULT_OBJECTIVE, run_sweep
+    from ..study.sweep import run_sweep
     from ..study.sweep_output import default_heatmaps, render_sweep, write_sweep
 
     try:
@@ -128,7 +129,7 @@ def sweep(
                 ["--vary: give at least one key to vary, e.g. --vary rounds.over_selection=1.1,1.3,1.5"]
             )
         objective = (Objective(maximise, True) if maximise else Objective(minimise, False) if minimise
-                     else DEFAULT_OBJECTIVE)
+                     else None)  # None: the default for the file's workloads
         limits = [parse_limit(text) for text in limit]
         executor = make_executor(workers, cluster)
         base = _base(file, overrides, devices, days, stress)
@@ -157,7 +158,8 @@ def compare(
         [], "--baseline", help="A setting of the baseline: key.path=value (repeatable)."
     ),
     candidate: list[str] = typer.Option(
-        [], "--candidate", help="A setting of the candidate: key.path=value (repeatable)."
+        [], "--candidate", help="A setting of the candidate: key.path=value (repeatable; e.g. "
+                                "sharing.rule=shares with workloads.NAME.share=... for every workload)."
     ),
     seeds: int = typer.Option(5, "--seeds", help="Seeds: first-seed .. first-seed+N-1; each runs both arms."),
     first_seed: int = seed_option(0, "--first-seed", "The first seed."),

@@ -14,23 +14,40 @@ From Python::
 """
 
 from .compare import Arm, ComparisonResult, Detection, parse_detect, run_compare
-from .compare_output import HEADLINE, comparison_record, render_compare, write_compare
+from .compare_output import (
+    HEADLINE,
+    HEADLINE_SEVERAL,
+    comparison_record,
+    headline_metrics,
+    render_compare,
+    write_compare,
+)
 from .executors import DaskCluster, InProcess, Job, LocalProcesses, make_executor, run_one
 from .names import renamed, resolve_metric
 from .pareto import dominates, pareto_front
 from .recommend import Limit, Objective, Recommendation, parse_limit, recommend
-from .settings import Axis, Cell, FleetFile, grid_cells, parse_axis, read_stress
+from .settings import Axis, Cell, FleetFile, check_policies, grid_cells, parse_axis, read_stress, workload_names
 from .stats import Interval, mean_interval, paired_interval, paired_power, seeds_needed
 from .store import RunStore, engine_fingerprint, run_key, source_fingerprint
-from .sweep import DEFAULT_OBJECTIVE, SweepResult, run_sweep
+from .sweep import DEFAULT_OBJECTIVE, DEFAULT_OBJECTIVE_SEVERAL, SweepResult, default_objective, run_sweep
 from .sweep_output import render_sweep, study_record, write_sweep
 from .table import (
     PARETO_OBJECTIVES,
+    PARETO_OBJECTIVES_SEVERAL,
+    SEVERAL_COMMITTED,
+    SEVERAL_TOTALS,
+    SEVERAL_WASTE,
+    SEVERAL_WASTE_WORKLOAD,
     WORST_REPRESENTATION,
     WORST_REPRESENTATION_TYPE,
+    WORST_REPRESENTATION_WORKLOAD,
     column_name,
     direction_of,
     flatten_summary,
+    is_several,
+    split_workload,
+    workload_prefix,
+    workload_prefixes,
 )
 from .verdicts import CONDITIONS, VERDICTS, Condition
 
@@ -42,10 +59,12 @@ __all__ = [
     "ComparisonResult",
     "Condition",
     "DEFAULT_OBJECTIVE",
+    "DEFAULT_OBJECTIVE_SEVERAL",
     "DaskCluster",
     "Detection",
     "FleetFile",
     "HEADLINE",
+    "HEADLINE_SEVERAL",
     "InProcess",
     "Interval",
     "Job",
@@ -53,19 +72,29 @@ __all__ = [
     "LocalProcesses",
     "Objective",
     "PARETO_OBJECTIVES",
+    "PARETO_OBJECTIVES_SEVERAL",
     "Recommendation",
     "RunStore",
+    "SEVERAL_COMMITTED",
+    "SEVERAL_TOTALS",
+    "SEVERAL_WASTE",
+    "SEVERAL_WASTE_WORKLOAD",
     "SweepResult",
     "VERDICTS",
     "WORST_REPRESENTATION",
     "WORST_REPRESENTATION_TYPE",
+    "WORST_REPRESENTATION_WORKLOAD",
+    "check_policies",
     "column_name",
     "comparison_record",
+    "default_objective",
     "direction_of",
     "dominates",
     "engine_fingerprint",
     "flatten_summary",
     "grid_cells",
+    "headline_metrics",
+    "is_several",
     "make_executor",
     "mean_interval",
     "paired_interval",
@@ -86,7 +115,11 @@ __all__ = [
     "run_sweep",
     "seeds_needed",
     "source_fingerprint",
+    "split_workload",
     "study_record",
+    "workload_names",
+    "workload_prefix",
+    "workload_prefixes",
     "write_compare",
     "write_sweep",
 ]

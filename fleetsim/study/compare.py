@@ -9,6 +9,12 @@ With a stress file, each arm runs as configured and again with the stress file's
 disruptions added, and each condition (code ``as-configured`` or ``stressed``) is compared
 on its own: does the candidate still beat the baseline when the disruption happens?
 
+With several workloads both arms must train the same ones (in any order); every workload's
+figures are compared under its ``workloads_<name>_`` prefix, each in its own direction, beside
+the totals over the workloads (:data:`fleetsim.study.table.SEVERAL_TOTALS`) and the
+``sharing`` figures. Two sharing rules are compared by setting ``sharing.rule`` (and under
+``shares`` every ``workloads.<name>.share``) in each arm.
+
 :func:`run_compare` runs it; :mod:`fleetsim.study.compare_output` prints and writes it.
 """
 
@@ -28,7 +34,7 @@ from ..policies import make_policy
 from .executors import Executor, InProcess, Job
 from .names import resolve_metric
 from .runs import Progress, gather
-from .settings import FleetFile, parse_assignment
+from .settings import FleetFile, parse_assignment, workload_names
 from .store import RunStore, run_key
 from .table import flatten_summary, frame_of_rows, metric_columns
 from .verdicts import Condition, detections, differences
@@ -96,12 +102,17 @@ class ComparisonResult:
     reused: int
     wall_s: float
     type_names: list[str] = field(default_factory=list)
+    workloads: list[str] = field(default_factory=list)
+    """The names of the workloads both arms train when there are several (empty for one)."""
 
 
 def _arm_config(base: FleetFile, arm: Arm, option: str) -> Any:
     try:
         config = base.config(arm.overrides)
-        make_policy(config.selection.policy, config.selection.params)
+        jobs = config.jobs
+        for job in jobs:
+            where = {} if len(jobs) == 1 else {"source": f"{base.source}: workloads.{job.name}.selection"}
+            make_policy(job.config.selection.policy, job.config.selection.params, **where)
     except ConfigError as exc:
         raise ConfigError([f"{option} {arm.label}: {line}" for line in exc.problems]) from None
     return config
@@ -155,13 +166,16 @@ def run_compare(
         conditions.append((Condition("stressed", str(stress)), base.with_stress(stress)))
     jobs: list[Job] = []
     plan: list[tuple[Condition, Arm, int, int, str]] = []  # condition, arm, seed, run seed, key
+    names: dict[str, list[str]] = {}
     for condition, fleet_file in conditions:
         for arm, option, offset in ((baseline, "--baseline", 0), (candidate, "--candidate", candidate_seed_offset)):
             config = _arm_config(fleet_file, arm, option)
+            names[arm.name] = workload_names(config)
             for seed in seeds:
                 key = run_key(config, seed + offset)
                 jobs.append(Job(key=key, config=config, seed=seed + offset, label=f"{arm.name} ({condition.text})"))
                 plan.append((condition, arm, seed, seed + offset, key))
+    _same_workloads(baseline, candidate, names)
     store = RunStore(Path(folder) / "cells") if folder is not None else None
     runner = executor or InProcess()
     summaries, reused = gather(jobs, runner, store, progress, _check(detect))
@@ -176,11 +190,28 @@ def run_compare(
     metrics = metric_columns(runs, exclude=["run_seed"])
     kept = [c for c, _ in conditions]
     first = summaries[plan[0][4]]
+    workloads = names[baseline.name]
+    types = next(iter(first["workloads"].values()), {}) if workloads else first
     return ComparisonResult(
         base=base, baseline=baseline, candidate=candidate, seeds=list(seeds),
         candidate_seed_offset=candidate_seed_offset, conditions=kept, runs=runs,
         differences=differences(runs, kept, metrics, baseline.name, candidate.name, power),
         detections=detections(runs, kept, metrics, baseline.name, candidate.name, detect, power),
         power=power, caution=first.get("caution", ""), executor=runner.description, reused=reused,
-        wall_s=time.perf_counter() - started, type_names=list(first.get("bias", {}).get("by_device_type", {})),
+        wall_s=time.perf_counter() - started, type_names=list(types.get("bias", {}).get("by_device_type", {})),
+        workloads=workloads,
     )
+
+
+def _same_workloads(baseline: Arm, candidate: Arm, names: dict[str, list[str]]) -> None:
+    """Refuse arms that train different workloads: each workload's figures are paired by name.
+
+    Raises ConfigError naming ``--candidate`` and both arms' workloads.
+    """
+    ours, theirs = names[baseline.name], names[candidate.name]
+    if sorted(ours) != sorted(theirs):
+        def shown(found: list[str]) -> str:
+            return ", ".join(found) if found else "one workload"
+        raise ConfigError([f"--candidate {candidate.label}: the arms train different workloads (baseline: "
+                           f"{shown(ours)}; candidate: {shown(theirs)}); a comparison pairs each workload's "
+                           "figures, so both arms need the same workloads"])

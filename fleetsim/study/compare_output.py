@@ -20,10 +20,11 @@ from .. import __version__
 from .compare import ComparisonResult
 from .stats import LEVEL
 from .store import atomic_text, save_frame
-from .table import WORST_REPRESENTATION, column_name, direction_of
+from .table import SEVERAL_TOTALS, WORST_REPRESENTATION, column_name, direction_of, workload_prefix, workload_prefixes
 from .verdicts import ALPHA, CONDITIONS, VERDICTS, Condition, verdict_text
 
-__all__ = ["render_compare", "comparison_record", "write_compare", "HEADLINE"]
+__all__ = ["render_compare", "comparison_record", "write_compare", "headline_metrics", "HEADLINE",
+           "HEADLINE_SEVERAL"]
 
 HEADLINE = (
     "rounds_committed_per_hour",
@@ -35,6 +36,10 @@ HEADLINE = (
     "rounds_duration_s_p50",
 )
 """Metrics the command prints first (every metric is in differences.csv)."""
+
+HEADLINE_SEVERAL = (*SEVERAL_TOTALS, "sharing_reported_for_several")
+"""With several workloads: the totals over them and the share of reporting devices that
+reported for more than one, printed before each workload's own :data:`HEADLINE` metrics."""
 
 _TYPE_SHARES = ("eligible_share", "accepted_share", "report_share", "weight_share", "representation_ratio")
 
@@ -54,31 +59,51 @@ def _row_text(row: pd.Series, name: str, width: int) -> str:
             f"{(_signed(row['difference']) + interval):<34} {verdict_text(row['verdict'], row['seeds'])}")
 
 
-def _shown(part: pd.DataFrame, type_names: list[str], every_metric: bool) -> tuple[list[tuple[str, str]], int]:
-    """(metric, name printed) of the rows to print, and how many of them are headline metrics."""
+def headline_metrics(workloads: list[str]) -> list[str]:
+    """The headline columns: :data:`HEADLINE`, or with several workloads
+    :data:`HEADLINE_SEVERAL`, each workload's desk share and each workload's :data:`HEADLINE`."""
+    if not workloads:
+        return list(HEADLINE)
+    desk = [column_name(("sharing", "desk_share", name)) for name in workloads]
+    return [*HEADLINE_SEVERAL, *desk, *(workload_prefix(name) + m for name in workloads for m in HEADLINE)]
+
+
+Shown = list[tuple[str | None, str]]
+"""Rows to print: (metric, name printed), or (None, a heading line)."""
+
+
+def _shown(part: pd.DataFrame, result: ComparisonResult, every_metric: bool) -> Shown:
+    """The rows to print: every metric, or the headline ones and each device type's shares
+    (with several workloads: the totals, then each workload's headline metrics and its
+    device types' representation ratios under a heading of its own)."""
     if every_metric:
-        return [(m, m) for m in part.index], len(part.index)
-    shown = [(m, m) for m in HEADLINE if m in part.index]
-    headline = len(shown)
-    for name in type_names:
-        for share in _TYPE_SHARES:
-            metric = column_name(("bias", "by_device_type", name, share))
-            if metric in part.index:
-                shown.append((metric, f"{name}: {share}"))
-    return shown, headline
+        return [(m, m) for m in part.index]
+    if not result.workloads:
+        shown: Shown = [(m, m) for m in HEADLINE if m in part.index]
+        types: Shown = [(column_name(("bias", "by_device_type", name, share)), f"{name}: {share}")
+                        for name in result.type_names for share in _TYPE_SHARES]
+        types = [(m, n) for m, n in types if m in part.index]
+        return shown + ([(None, "  by device type (bias_by_device_type_<type>_<figure>):")] + types if types else [])
+    every = headline_metrics(result.workloads)
+    shown = [(m, m) for m in every[:len(HEADLINE_SEVERAL) + len(result.workloads)] if m in part.index]
+    for name in result.workloads:
+        prefix = workload_prefix(name)
+        own: Shown = [(prefix + m, m) for m in HEADLINE]
+        own += [(prefix + column_name(("bias", "by_device_type", kind, "representation_ratio")),
+                 f"{kind}: representation_ratio") for kind in result.type_names]
+        shown += [(None, f"  workload {name} ({prefix}<column>):")] + [(m, n) for m, n in own if m in part.index]
+    return shown
 
 
 def _condition_lines(result: ComparisonResult, condition: Condition, every_metric: bool) -> list[str]:
     d = result.differences
     part = d[d["condition"] == condition.code].set_index("metric", drop=False)
-    shown, headline = _shown(part, result.type_names, every_metric)
-    width = max([len(n) for _, n in shown] + [20])
+    shown = _shown(part, result, every_metric)
+    width = max([len(n) for m, n in shown if m is not None] + [20])
     lines = ["", f"{condition.text}:",
              f"  {'metric':<{width}} {'baseline':>10} {'candidate':>10}  {'difference [95% interval]':<34} verdict"]
-    for i, (metric, name) in enumerate(shown):
-        if i == headline and not every_metric:
-            lines.append("  by device type (bias_by_device_type_<type>_<figure>):")
-        lines.append(_row_text(part.loc[metric], name, width))
+    for metric, name in shown:
+        lines.append(name if metric is None else _row_text(part.loc[metric], name, width))
     counts = part["verdict"].value_counts()
     lines.append("  all metrics: " + ", ".join(f"{v} {k}" for k, v in counts.items())
                  + " (every metric in differences.csv, or rerun with --all)")
@@ -112,16 +137,20 @@ def render_compare(result: ComparisonResult, every_metric: bool = False) -> str:
         f"  {runs} runs on {result.executor}; {result.reused} reused; {result.wall_s:.1f} s",
         "  differences are candidate - baseline, mean over seeds with 95% paired t intervals",
     ]
+    if result.workloads:
+        lines.append(f"  workloads {', '.join(result.workloads)}: each one's figures are workloads_<name>_<column>; "
+                     "study_* are totals over them (docs/studies.md)")
     for condition in result.conditions:
         lines += _condition_lines(result, condition, every_metric)
     d = result.differences
     if len(result.conditions) > 1:
         lines += ["", "does the candidate still win under stress?"]
-        for metric in HEADLINE:
+        prefixes = workload_prefixes(result.runs.columns)
+        for metric in headline_metrics(result.workloads):
             verdicts = [f"{verdict_text(row.verdict, row.seeds)} {condition.text}"
                         for condition in result.conditions
                         for row in d[(d["condition"] == condition.code) & (d["metric"] == metric)].itertuples()]
-            if verdicts and direction_of(metric):
+            if verdicts and direction_of(metric, prefixes):
                 lines.append(f"  {metric}: " + "; ".join(verdicts))
     if not result.detections.empty:
         lines += _detection_lines(result)
@@ -141,6 +170,7 @@ def comparison_record(result: ComparisonResult) -> dict[str, Any]:
         "fleet_file": result.base.source,
         "overrides": list(result.base.overrides),
         "arms": [{"arm": arm.name, "settings": list(arm.overrides)} for arm in (result.baseline, result.candidate)],
+        **({"workloads": result.workloads} if result.workloads else {}),
         "seeds": result.seeds,
         "candidate_seed_offset": result.candidate_seed_offset,
         "conditions": [{"condition": c.code, "stress_file": c.stress_file, "meaning": CONDITIONS[c.code]}

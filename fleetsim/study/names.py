@@ -7,7 +7,8 @@ study column (:func:`fleetsim.study.table.column_name`), such as
 (``rounds.committed_per_hour``) and some figures by other words (``rounds.failed``,
 ``waste.by_cause.stopped-at-close``, ``signal:idle``). Such a name is refused in one line
 naming the column it became, so a script written for the old names stops instead of
-studying something else.
+studying something else. With several workloads a short name that ends one column per
+workload (``committed_per_hour``) is ambiguous and refused with the candidates.
 """
 
 from __future__ import annotations

@@ -14,7 +14,7 @@ import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
-from .table import PARETO_OBJECTIVES, direction_of
+from .table import direction_of, workload_prefixes
 
 __all__ = ["frontier_plot", "heat_map"]
 
@@ -35,8 +35,11 @@ def _errors(mean: np.ndarray, low: np.ndarray, high: np.ndarray) -> np.ndarray:
 def frontier_plot(result: Any, path: Path, fmt: str = "png") -> None:
     """Committed rounds per hour (x) against compute waste fraction (y) for every cell, coloured
     by worst representation; front cells outlined and numbered, the recommendation starred.
-    Bars are 95% intervals across seeds."""
-    (throughput, _), (waste, _), (representation, _) = PARETO_OBJECTIVES
+    Bars are 95% intervals across seeds. With several workloads the axes are the front's
+    totals: committed rounds per hour summed over the workloads, the worst workload's waste and
+    the worst representation of any workload."""
+    (throughput, _), (waste, _), (representation, _) = result.objectives
+    several = bool(result.workloads)
     x, xl, xh = _stats(result, throughput)
     y, yl, yh = _stats(result, waste)
     c, _, _ = _stats(result, representation)
@@ -59,10 +62,13 @@ def frontier_plot(result: Any, path: Path, fmt: str = "png") -> None:
         i = [cell.index for cell in result.grid].index(rec)
         ax.scatter([x[i]], [y[i]], marker="*", s=320, facecolors="none", edgecolors="crimson",
                    linewidths=1.5, zorder=4, label=f"recommended: {result.recommendation.label}")
-    figure.colorbar(points, ax=ax, label="worst representation, min over types of min(r, 1/r)")
+    over = "workloads and types" if several else "types"
+    figure.colorbar(points, ax=ax, label=f"worst representation, min over {over} of min(r, 1/r)")
     _fit_to_means(ax, x, y)
-    ax.set_xlabel("committed rounds per hour (higher is better)")
-    ax.set_ylabel("straggler waste, fraction of compute (lower is better)")
+    ax.set_xlabel("committed rounds per hour" + (", summed over workloads" if several else "")
+                  + " (higher is better)")
+    ax.set_ylabel("straggler waste, fraction of compute" + (", worst workload" if several else "")
+                  + " (lower is better)")
     ax.set_title(f"{len(result.grid)} cells x {len(result.seeds)} seeds; numbers are cell indices; "
                  "bars are 95% intervals (clipped to the view)", fontsize=9)
     ax.legend(loc="best", fontsize=8)
@@ -108,7 +114,7 @@ def heat_map(result: Any, metric: str, path: Path, fmt: str = "png") -> None:
         col = first.values.index(settings[first.key])
         row = second.values.index(settings[second.key]) if second else 0
         grid[row, col] = by_cell[cell.index]
-    direction = direction_of(metric)
+    direction = direction_of(metric, workload_prefixes(result.runs.columns))
     cmap = {"higher": "viridis", "lower": "viridis_r", "closer-to-1": "viridis_r", None: "cividis"}[direction]
     if direction == "closer-to-1":
         shown = np.abs(np.log(np.where(grid > 0, grid, np.nan)))
@@ -117,7 +123,12 @@ def heat_map(result: Any, metric: str, path: Path, fmt: str = "png") -> None:
         shown = grid
         notes = {"higher": "brighter is better", "lower": "brighter is better (lower)", None: "neutral metric"}
         note = notes[direction]
-    figure = Figure(figsize=(1.2 + 1.1 * len(first.values), 1.6 + 0.7 * grid.shape[0]), layout="constrained")
+    title = f"{metric} (mean over {len(result.seeds)} seeds)\n{note}"
+    if held:
+        title += "\nheld at " + ", ".join(f"{k}={_tick(v)}" for k, v in held.items())
+    # Wide enough for the title (about 0.07 inch a character at 9 points) and the colour bar.
+    width = max(1.2 + 1.1 * len(first.values), 1.4 + 0.07 * max(len(line) for line in title.splitlines()))
+    figure = Figure(figsize=(width, 1.6 + 0.7 * grid.shape[0]), layout="constrained")
     FigureCanvasAgg(figure)
     ax = figure.subplots()
     image = ax.imshow(np.ma.masked_invalid(shown), cmap=cmap, aspect="auto")
@@ -134,9 +145,6 @@ def heat_map(result: Any, metric: str, path: Path, fmt: str = "png") -> None:
         ax.set_ylabel(second.key)
     else:
         ax.set_yticks([])
-    title = f"{metric} (mean over {len(result.seeds)} seeds)\n{note}"
-    if held:
-        title += "\nheld at " + ", ".join(f"{k}={_tick(v)}" for k, v in held.items())
     ax.set_title(title, fontsize=9)
     figure.colorbar(image, ax=ax)
     figure.savefig(path, format=fmt, dpi=110)

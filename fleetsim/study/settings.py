@@ -30,6 +30,8 @@ __all__ = [
     "parse_assignment",
     "grid_cells",
     "read_stress",
+    "check_policies",
+    "workload_names",
     "MAX_AXIS_VALUES",
 ]
 
@@ -252,6 +254,25 @@ def parse_axis(text: str) -> Axis:
     return Axis(key=key, values=tuple(values))
 
 
+def check_policies(config: Config, source: str) -> None:
+    """Build every workload's selection policy and check the run's memory, as a run would.
+
+    Raises ConfigError naming ``source`` and the selection's key path (``selection``, or
+    ``workloads.<name>.selection`` for one of several workloads).
+    """
+    jobs = config.jobs
+    for job in jobs:
+        where = "selection" if len(jobs) == 1 else f"workloads.{job.name}.selection"
+        policy = make_policy(job.config.selection.policy, job.config.selection.params, source=f"{source}: {where}")
+        check_memory(job.config, float(policy.window_s), source)
+
+
+def workload_names(config: Config) -> list[str]:
+    """The names of a configuration's workloads when it has several, else an empty list."""
+    jobs = config.jobs
+    return [job.name for job in jobs] if len(jobs) > 1 else []
+
+
 def grid_cells(base: FleetFile, axes: Sequence[Axis]) -> list[tuple[Cell, Config]]:
     """Every cell of the grid (first axis slowest) with its validated configuration.
 
@@ -274,8 +295,7 @@ def grid_cells(base: FleetFile, axes: Sequence[Axis]) -> list[tuple[Cell, Config
         cell = Cell(index=index, settings=settings, overrides=overrides, label=label)
         try:
             config = base.config(overrides)
-            policy = make_policy(config.selection.policy, config.selection.params, source=f"{base.source}: selection")
-            check_memory(config, float(policy.window_s), base.source)
+            check_policies(config, base.source)
         except ConfigError as exc:
             for line in exc.problems:
                 problems.setdefault(line, []).append(cell.label)

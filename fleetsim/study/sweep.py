@@ -23,13 +23,16 @@ from .names import resolve_metric
 from .pareto import pareto_front
 from .recommend import Limit, Objective, Recommendation, recommend
 from .runs import Progress, gather
-from .settings import Axis, Cell, FleetFile, grid_cells
+from .settings import Axis, Cell, FleetFile, grid_cells, workload_names
 from .store import RunStore
-from .table import PARETO_OBJECTIVES, flatten_summary, metric_columns
+from .table import PARETO_OBJECTIVES, PARETO_OBJECTIVES_SEVERAL, SEVERAL_COMMITTED, flatten_summary, metric_columns
 
-__all__ = ["SweepResult", "run_sweep", "resolve_goal", "DEFAULT_OBJECTIVE"]
+__all__ = ["SweepResult", "run_sweep", "resolve_goal", "default_objective", "DEFAULT_OBJECTIVE",
+           "DEFAULT_OBJECTIVE_SEVERAL"]
 
 DEFAULT_OBJECTIVE = Objective("rounds_committed_per_hour", maximise=True)
+DEFAULT_OBJECTIVE_SEVERAL = Objective(SEVERAL_COMMITTED, maximise=True)
+"""The default objective of a sweep of several workloads: their committed rounds per hour, summed."""
 
 
 @dataclass
@@ -53,6 +56,10 @@ class SweepResult:
     reused: int
     wall_s: float
     heatmap_metrics: list[str] = field(default_factory=list)
+    workloads: list[str] = field(default_factory=list)
+    """The names of the workloads when the fleet file lists several (empty for one)."""
+    objectives: tuple[tuple[str, bool], ...] = PARETO_OBJECTIVES
+    """The front's objectives and whether each is maximised (the totals for several workloads)."""
 
     def settings_columns(self) -> list[str]:
         return [setting_column(axis.key) for axis in self.axes]
@@ -84,11 +91,29 @@ def resolve_goal(objective: Objective, limits: Sequence[Limit], columns: Sequenc
     return goal, bounds
 
 
+def default_objective(workloads: Sequence[str]) -> Objective:
+    """The objective of a sweep that names none: committed rounds per hour, summed over the
+    workloads when there are several (:data:`DEFAULT_OBJECTIVE_SEVERAL`)."""
+    return DEFAULT_OBJECTIVE_SEVERAL if workloads else DEFAULT_OBJECTIVE
+
+
+def _same_workloads(grid: Sequence[tuple[Cell, Config]]) -> list[str]:
+    """The workload names every cell shares; raises ConfigError when cells differ in them."""
+    first = workload_names(grid[0][1])
+    for cell, config in grid[1:]:
+        names = workload_names(config)
+        if names != first:
+            ours, theirs = (", ".join(found) or "one workload" for found in (first, names))
+            raise ConfigError([f"--vary cell {cell.label}: the cells train different workloads ({grid[0][0].label}: "
+                               f"{ours}; {cell.label}: {theirs}); every cell of a sweep needs the same workloads"])
+    return first
+
+
 def run_sweep(
     base: FleetFile,
     axes: Sequence[Axis],
     seeds: Sequence[int],
-    objective: Objective = DEFAULT_OBJECTIVE,
+    objective: Objective | None = None,
     limits: Sequence[Limit] = (),
     executor: Executor | None = None,
     folder: str | Path | None = None,
@@ -99,8 +124,10 @@ def run_sweep(
     ``folder``: the study folder; finished runs are saved under ``folder/cells`` as they end
     and reused when the sweep runs again. Metric names in ``objective`` and ``limits`` are
     study columns, or short (``committed_per_hour``); they are checked on the first summary,
-    before the other runs. Raises ConfigError for a bad axis, cell, metric name or empty seed
-    list, FleetsimError when a run fails.
+    before the other runs. ``objective`` None is :func:`default_objective`; with several
+    workloads the front's objectives are :data:`PARETO_OBJECTIVES_SEVERAL`. Raises ConfigError
+    for a bad axis, cell, metric name or empty seed list, or cells that differ in their
+    workloads; FleetsimError when a run fails.
     """
     if not axes:
         raise ConfigError(["--vary: give at least one key to vary"])
@@ -109,6 +136,9 @@ def run_sweep(
     started = time.perf_counter()
     settings = settings_columns(axes)
     grid = grid_cells(base, axes)
+    workloads = _same_workloads(grid)
+    objective = objective if objective is not None else default_objective(workloads)
+    objectives = PARETO_OBJECTIVES_SEVERAL if workloads else PARETO_OBJECTIVES
     keys, jobs = cell_jobs(grid, seeds)
     store = RunStore(Path(folder) / "cells") if folder is not None else None
 
@@ -128,8 +158,8 @@ def run_sweep(
             metrics.append(name)
 
     long, wide = cell_statistics(runs, metrics, settings)
-    points = wide[[name for name, _ in PARETO_OBJECTIVES]].to_numpy(dtype=float)
-    mask = pareto_front(points, [up for _, up in PARETO_OBJECTIVES])
+    points = wide[[name for name, _ in objectives]].to_numpy(dtype=float)
+    mask = pareto_front(points, [up for _, up in objectives])
     wide["on_front"] = mask
     front = [int(c) for c in wide.loc[mask, "cell"]]
     rec = recommend(wide, runs, goal, bounds, front=set(front))
@@ -139,4 +169,5 @@ def run_sweep(
         base=base, axes=list(axes), seeds=list(seeds), grid=cells, configs=[config for _, config in grid],
         runs=runs, cell_means=long, cells=wide, front=front, recommendation=rec, caution=caution,
         executor=runner.description, reused=reused, wall_s=time.perf_counter() - started,
+        workloads=workloads, objectives=objectives,
     )

@@ -35,7 +35,14 @@ from .names import resolve_metric
 from .stats import LEVEL
 from .store import atomic_save, atomic_text, run_key, save_frame
 from .sweep import SweepResult
-from .table import PARETO_OBJECTIVES, WORST_REPRESENTATION, metric_columns
+from .table import (
+    PARETO_OBJECTIVES,
+    SEVERAL_COMMITTED,
+    SEVERAL_WASTE,
+    WORST_REPRESENTATION,
+    metric_columns,
+    workload_prefix,
+)
 
 __all__ = ["render_sweep", "write_sweep", "study_record", "front_table", "default_heatmaps", "PLOT_FORMATS"]
 
@@ -55,11 +62,31 @@ def _interval_text(result: SweepResult, cell: int, metric: str) -> str:
     return f"{r['mean']:.4g} [{r['low']:.4g}, {r['high']:.4g}]"
 
 
+_HEADS = ("committed per hour", "compute waste fraction", "worst representation")
+_HEADS_SEVERAL = ("committed per hour, summed", "worst compute waste", "worst representation")
+
+
+def _several_lines(result: SweepResult) -> list[str]:
+    """With several workloads: what the totals are, and the recommended cell's figures by workload."""
+    lines = [f"  several workloads ({', '.join(result.workloads)}): {SEVERAL_COMMITTED} sums their committed "
+             f"rounds per hour; {SEVERAL_WASTE} and {WORST_REPRESENTATION} are the worst workload's; "
+             "each workload's figures are workloads_<name>_<column>"]
+    cell = result.recommendation.cell
+    if cell is None:
+        return lines
+    lines.append("  the recommended cell by workload (committed per hour; compute waste fraction; "
+                 "worst representation):")
+    for name in result.workloads:
+        parts = [_interval_text(result, cell, workload_prefix(name) + column) for column, _ in PARETO_OBJECTIVES]
+        lines.append(f"    {name}: " + "; ".join(parts))
+    return lines
+
+
 def render_sweep(result: SweepResult) -> str:
     """The plain-text account of a sweep that ``fleetsim sweep`` prints."""
     n_cells, n_seeds = len(result.grid), len(result.seeds)
     total = len({run_key(c, s) for c in result.configs for s in result.seeds})  # distinct runs
-    objectives = ", ".join(f"{name} ({'higher' if up else 'lower'})" for name, up in PARETO_OBJECTIVES)
+    objectives = ", ".join(f"{name} ({'higher' if up else 'lower'})" for name, up in result.objectives)
     lines = [
         f"sweep of {result.base.source}"
         + (f" under the stress file {result.base.stress_source}" if result.base.stress_source else ""),
@@ -70,12 +97,12 @@ def render_sweep(result: SweepResult) -> str:
         f"Pareto front: {len(result.front)} of {n_cells} cells, those no other cell beats on all of {objectives}:",
     ]
     width = max([len(c.label) for c in result.grid] + [8])
-    lines.append(f"  {'cell':<{width}}  {'committed per hour':<26}  {'compute waste fraction':<26}  "
-                 "worst representation")
+    heads = _HEADS_SEVERAL if result.workloads else _HEADS
+    lines.append(f"  {'cell':<{width}}  {heads[0]:<26}  {heads[1]:<26}  {heads[2]}")
     for cell in result.grid:
         if cell.index not in result.front:
             continue
-        parts = [_interval_text(result, cell.index, name) for name, _ in PARETO_OBJECTIVES]
+        parts = [_interval_text(result, cell.index, name) for name, _ in result.objectives]
         lines.append(f"  {cell.label:<{width}}  {parts[0]:<26}  {parts[1]:<26}  {parts[2]}")
     lines.append("  (means over seeds, 95% t intervals in brackets)")
     rec = result.recommendation
@@ -86,6 +113,8 @@ def render_sweep(result: SweepResult) -> str:
     lines.append(f"recommendation ({goal}):")
     lines.append(f"  {rec.label}" if rec.cell is not None else "  none")
     lines.extend(f"  - {reason}" for reason in rec.reasons)
+    if result.workloads:
+        lines.extend(_several_lines(result))
     lines.append("")
     lines.append(f"caution: {result.caution}")
     return "\n".join(lines)
@@ -105,7 +134,11 @@ def _json_value(value: Any) -> Any:
 
 def study_record(result: SweepResult) -> dict[str, Any]:
     """The JSON-ready description of a sweep written to ``study.json``."""
-    objectives = [{"metric": name, "maximise": up} for name, up in PARETO_OBJECTIVES]
+    objectives = [{"metric": name, "maximise": up} for name, up in result.objectives]
+    several = {"workloads": result.workloads, WORST_REPRESENTATION: (
+        "min over workloads and device types of min(r, 1/r), r = report share / fleet share "
+        "(1 is proportional)"), SEVERAL_COMMITTED: "the workloads' committed rounds per hour, summed",
+        SEVERAL_WASTE: "the largest compute waste fraction of any workload"} if result.workloads else {}
     return {
         "kind": "sweep",
         "fleetsim": __version__,
@@ -131,6 +164,7 @@ def study_record(result: SweepResult) -> dict[str, Any]:
         WORST_REPRESENTATION: (
             "min over device types of min(r, 1/r), r = report share / fleet share (1 is proportional)"
         ),
+        **several,
         "front": result.front,
         "recommendation": result.recommendation.as_dict(),
         "executor": result.executor,
@@ -143,10 +177,15 @@ def study_record(result: SweepResult) -> dict[str, Any]:
 def default_heatmaps(result: SweepResult) -> list[str]:
     """The metrics drawn by default: the front's objectives, the objective and limits, and a
     few headline figures."""
-    names = [name for name, _ in PARETO_OBJECTIVES]
+    names = [name for name, _ in result.objectives]
     names.append(result.recommendation.objective.metric)
     names.extend(lim.metric for lim in result.recommendation.limits)
-    names.extend(["bias_coverage", "waste_energy_fraction", "rounds_duration_s_p90"])
+    headline = [*(name for name, _ in PARETO_OBJECTIVES), "bias_coverage", "waste_energy_fraction",
+                "rounds_duration_s_p90"]
+    if result.workloads:
+        names.extend(workload_prefix(w) + name for w in result.workloads for name in headline)
+    else:
+        names.extend(headline[3:])
     out: list[str] = []
     for name in names:
         if name in result.runs.columns and name not in out:
@@ -156,10 +195,12 @@ def default_heatmaps(result: SweepResult) -> list[str]:
 
 def front_table(result: SweepResult) -> pd.DataFrame:
     """``front.csv``: per cell its settings, ``<metric>_mean``, ``_low`` and ``_high`` of the
-    front's objectives, the objective and the limited metrics, ``on_front`` and ``meets_limits``."""
+    front's objectives, the objective and the limited metrics (with several workloads also each
+    workload's own three figures), ``on_front`` and ``meets_limits``."""
     rec = result.recommendation
-    wanted = [name for name, _ in PARETO_OBJECTIVES]
-    for name in [rec.objective.metric, *(lim.metric for lim in rec.limits)]:
+    wanted = [name for name, _ in result.objectives]
+    own = [workload_prefix(w) + name for w in result.workloads for name, _ in PARETO_OBJECTIVES]
+    for name in [rec.objective.metric, *(lim.metric for lim in rec.limits), *own]:
         if name not in wanted:
             wanted.append(name)
     table = result.cells[["cell", "label", *result.settings_columns()]].copy()

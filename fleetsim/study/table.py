@@ -15,6 +15,22 @@ cause or outcome that a run did not see are 0, not missing. Two columns are adde
   round committed.
 - ``study_worst_representation_type``: the device type that sets it.
 
+A run of several workloads nests each workload's figures under ``workloads.<name>`` (columns
+``workloads_<name>_<column>``, such as ``workloads_ranking_rounds_committed_per_hour``) and
+adds a ``sharing`` block (``sharing_desk_share_ranking``, ...). The two columns above are then
+computed for each workload under its prefix (``workloads_ranking_study_worst_representation``),
+and the run gets totals over its workloads (:data:`SEVERAL_TOTALS`):
+
+- ``study_rounds_committed_per_hour``: the sum of the workloads' committed rounds per hour;
+- ``study_worst_waste_compute_fraction``: the largest compute waste fraction of any workload
+  (``study_worst_waste_compute_fraction_workload`` names it);
+- ``study_worst_representation``: the smallest of the workloads' worst representations
+  (``study_worst_representation_type`` and ``study_worst_representation_workload`` name the
+  type and the workload).
+
+A total is NaN when any workload's figure is undefined. These three are the front's
+objectives of a study of several workloads (:data:`PARETO_OBJECTIVES_SEVERAL`).
+
 The metric names users type (``--maximise``, ``--limit``, ``--detect``, ``--heatmap``) are
 these columns; :func:`resolve_metric` refuses the dotted names and old words of earlier
 versions in one line naming the new column (see :mod:`fleetsim.study.names`).
@@ -35,7 +51,18 @@ from ..events import CAUSES, OUTCOMES, WASTE_CAUSES, json_key
 __all__ = [
     "WORST_REPRESENTATION",
     "WORST_REPRESENTATION_TYPE",
+    "WORST_REPRESENTATION_WORKLOAD",
+    "SEVERAL_COMMITTED",
+    "SEVERAL_WASTE",
+    "SEVERAL_WASTE_WORKLOAD",
+    "SEVERAL_TOTALS",
     "PARETO_OBJECTIVES",
+    "PARETO_OBJECTIVES_SEVERAL",
+    "WORKLOADS_PREFIX",
+    "is_several",
+    "workload_prefix",
+    "workload_prefixes",
+    "split_workload",
     "ZERO_WHEN_ABSENT",
     "Direction",
     "column_name",
@@ -51,12 +78,29 @@ __all__ = [
 WORST_REPRESENTATION = "study_worst_representation"
 WORST_REPRESENTATION_TYPE = "study_worst_representation_type"
 
+WORST_REPRESENTATION_WORKLOAD = "study_worst_representation_workload"
+SEVERAL_COMMITTED = "study_rounds_committed_per_hour"
+SEVERAL_WASTE = "study_worst_waste_compute_fraction"
+SEVERAL_WASTE_WORKLOAD = "study_worst_waste_compute_fraction_workload"
+SEVERAL_TOTALS = (SEVERAL_COMMITTED, SEVERAL_WASTE, WORST_REPRESENTATION)
+"""The totals over workloads a run of several workloads adds (see the module doc)."""
+
+WORKLOADS_PREFIX = "workloads_"
+"""Every column of one workload of a run of several starts with this and the workload's name."""
+
 PARETO_OBJECTIVES: tuple[tuple[str, bool], ...] = (
     ("rounds_committed_per_hour", True),
     ("waste_compute_fraction", False),
     (WORST_REPRESENTATION, True),
 )
 """The front's three objectives and whether each is maximised."""
+
+PARETO_OBJECTIVES_SEVERAL: tuple[tuple[str, bool], ...] = (
+    (SEVERAL_COMMITTED, True),
+    (SEVERAL_WASTE, False),
+    (WORST_REPRESENTATION, True),
+)
+"""The front's objectives for several workloads: the totals over the workloads."""
 
 Direction = Literal["higher", "lower", "closer-to-1"]
 
@@ -80,6 +124,8 @@ _DIRECTIONS: tuple[tuple[str, Direction | None], ...] = (
     ("participations_used_reports", "higher"),
     ("bias_coverage", "higher"),
     (WORST_REPRESENTATION, "higher"),
+    (SEVERAL_COMMITTED, "higher"),
+    (SEVERAL_WASTE, "lower"),
     ("bias_*_representation_ratio", "closer-to-1"),
     ("bias_*_never_share", "lower"),
     ("bias_gini", "lower"),
@@ -122,13 +168,14 @@ def _add(out: dict[str, tuple[tuple[str, ...], Any]], path: tuple[str, ...], val
     out[column] = (path, value)
 
 
-def flatten_summary(summary: dict[str, Any]) -> dict[str, Any]:
-    """One flat row of a run's summary plus the study's derived columns (see module doc).
+def is_several(summary: dict[str, Any]) -> bool:
+    """True for the summary of a run of several workloads (a ``sharing`` block and ``workloads``)."""
+    return isinstance(summary.get("workloads"), dict) and isinstance(summary.get("sharing"), dict)
 
-    Raises ConfigError naming both key paths when two would give the same column.
-    """
-    found: dict[str, tuple[tuple[str, ...], Any]] = {}
-    _walk((), summary, found)
+
+def _worst_representation(summary: dict[str, Any]) -> tuple[float, str | None]:
+    """min over device types of min(r, 1/r) and the type that sets it (NaN, None when a ratio
+    is undefined)."""
     worst, worst_type = math.nan, None
     types = summary.get("bias", {}).get("by_device_type", {})
     ratios = {name: v.get("representation_ratio") for name, v in types.items()}
@@ -137,15 +184,99 @@ def flatten_summary(summary: dict[str, Any]) -> dict[str, Any]:
             closeness = 0.0 if r <= 0 else min(r, 1.0 / r)
             if worst_type is None or closeness < worst:
                 worst, worst_type = closeness, name
-    _add(found, ("study", "worst_representation"), worst)
-    _add(found, ("study", "worst_representation_type"), worst_type)
+    return worst, worst_type
+
+
+def _figure(part: dict[str, Any], section: str, key: str) -> float:
+    value = part.get(section, {}).get(key)
+    return float(value) if isinstance(value, (int, float)) and not isinstance(value, bool) else math.nan
+
+
+def _worst_of(figures: dict[str, float], pick: Any) -> str | None:
+    """The workload ``pick`` (max or min) chooses among ``figures``, the earlier of equals; None
+    when any figure is undefined."""
+    if not figures or not all(math.isfinite(v) for v in figures.values()):
+        return None
+    return pick(figures, key=figures.__getitem__)
+
+
+def _add_totals(found: dict[str, tuple[tuple[str, ...], Any]], parts: dict[str, dict[str, Any]]) -> None:
+    """The totals over the workloads of a run of several (:data:`SEVERAL_TOTALS`): the sum of
+    committed rounds per hour, the worst compute waste fraction and the worst representation,
+    each NaN when any workload's figure is undefined."""
+    committed = [_figure(part, "rounds", "committed_per_hour") for part in parts.values()]
+    _add(found, ("study", "rounds_committed_per_hour"), math.fsum(committed))
+    waste = {name: _figure(part, "waste", "compute_fraction") for name, part in parts.items()}
+    name = _worst_of(waste, max)
+    _add(found, ("study", "worst_waste_compute_fraction"), waste[name] if name is not None else math.nan)
+    _add(found, ("study", "worst_waste_compute_fraction_workload"), name)
+    own = {name: found[column_name(("workloads", name, "study", "worst_representation"))][1] for name in parts}
+    name = _worst_of(own, min)
+    kind = found[column_name(("workloads", name, "study", "worst_representation_type"))][1] \
+        if name is not None else None
+    _add(found, ("study", "worst_representation"), own[name] if name is not None else math.nan)
+    _add(found, ("study", "worst_representation_type"), kind)
+    _add(found, ("study", "worst_representation_workload"), name)
+
+
+def flatten_summary(summary: dict[str, Any]) -> dict[str, Any]:
+    """One flat row of a run's summary plus the study's derived columns (see module doc).
+
+    For a run of several workloads the derived columns are computed for each workload, under
+    its ``workloads_<name>_`` prefix, and the totals of :data:`SEVERAL_TOTALS` are added.
+    Raises ConfigError naming both key paths when two would give the same column.
+    """
+    found: dict[str, tuple[tuple[str, ...], Any]] = {}
+    _walk((), summary, found)
+    if not is_several(summary):
+        worst, worst_type = _worst_representation(summary)
+        _add(found, ("study", "worst_representation"), worst)
+        _add(found, ("study", "worst_representation_type"), worst_type)
+        return {column: value for column, (_, value) in found.items()}
+    parts = {str(name): part for name, part in summary["workloads"].items() if isinstance(part, dict)}
+    for name, part in parts.items():
+        worst, worst_type = _worst_representation(part)
+        _add(found, ("workloads", name, "study", "worst_representation"), worst)
+        _add(found, ("workloads", name, "study", "worst_representation_type"), worst_type)
+    _add_totals(found, parts)
     return {column: value for column, (_, value) in found.items()}
+
+
+_MARKER = WORST_REPRESENTATION  # every workload of a run of several has workloads_<name>_<_MARKER>
+
+
+def workload_prefix(name: str) -> str:
+    """The prefix of one workload's columns: ``workloads_`` and the name written as a column."""
+    return column_name(("workloads", name)) + "_"
+
+
+def workload_prefixes(columns: Iterable[str]) -> list[str]:
+    """The ``workloads_<name>_`` prefixes of the workloads among ``columns`` (found from the
+    ``workloads_<name>_study_worst_representation`` column :func:`flatten_summary` always adds),
+    longest first; empty for a single workload."""
+    found = {c[: -len(_MARKER)] for c in columns if c.startswith(WORKLOADS_PREFIX) and c.endswith("_" + _MARKER)}
+    return sorted(found, key=lambda p: (-len(p), p))
+
+
+def split_workload(column: str, prefixes: Sequence[str]) -> tuple[str, str]:
+    """``(prefix, rest)`` of a workload's column (the longest matching prefix of ``prefixes``),
+    or ``("", column)`` for a column of the whole run."""
+    for prefix in prefixes:
+        if column.startswith(prefix) and len(column) > len(prefix):
+            return prefix, column[len(prefix):]
+    return "", column
 
 
 def absent_is_zero(column: str, known: Iterable[str] = ()) -> bool:
     """True when ``column`` counts a cause or outcome (see ZERO_WHEN_ABSENT) that a run may not
     have seen, so that its absence means 0. A waste column names one of the figures ``known``
-    columns have for another cause (``waste_by_cause_crash_compute_s``)."""
+    columns have for another cause (``waste_by_cause_crash_compute_s``). A workload's column
+    (``workloads_<name>_...``, the workload among ``known``) is judged without its prefix,
+    against that workload's ``known`` columns."""
+    known = list(known)
+    own, column = split_workload(column, workload_prefixes(known))
+    if own:
+        known = [c[len(own):] for c in known if c.startswith(own)]
     for prefix, words in ZERO_WHEN_ABSENT.items():
         if not column.startswith(prefix):
             continue
@@ -160,8 +291,9 @@ def absent_is_zero(column: str, known: Iterable[str] = ()) -> bool:
 def frame_of_rows(rows: list[dict[str, Any]]) -> pd.DataFrame:
     """Rows of flattened summaries as a frame; counts absent from a run become 0."""
     frame = pd.DataFrame.from_records(rows)
+    prefixes = workload_prefixes(frame.columns)
     for column in frame.columns:
-        if column.startswith(tuple(ZERO_WHEN_ABSENT)):
+        if split_workload(column, prefixes)[1].startswith(tuple(ZERO_WHEN_ABSENT)):
             frame[column] = frame[column].fillna(0)
     return frame
 
@@ -176,8 +308,21 @@ def metric_columns(frame: pd.DataFrame, exclude: Iterable[str] = ()) -> list[str
     ]
 
 
-def direction_of(metric: str) -> Direction | None:
-    """Which way ``metric`` is better: higher, lower, closer to 1, or None (neutral)."""
+def direction_of(metric: str, prefixes: Sequence[str] | None = None) -> Direction | None:
+    """Which way ``metric`` is better: higher, lower, closer to 1, or None (neutral).
+
+    A workload's column is judged as the same column of a single workload. ``prefixes``
+    (:func:`workload_prefixes` of the study's columns) tells where its workload's name ends;
+    without them any ``workloads_<name>_`` is taken off, which misjudges only names holding a
+    pattern's first word (``x_waste``).
+    """
+    if prefixes is not None:
+        metric = split_workload(metric, prefixes)[1]
+    elif metric.startswith(WORKLOADS_PREFIX):
+        for pattern, direction in _DIRECTIONS:
+            if fnmatch.fnmatchcase(metric, f"{WORKLOADS_PREFIX}*_{pattern}"):
+                return direction
+        return None
     for pattern, direction in _DIRECTIONS:
         if fnmatch.fnmatchcase(metric, pattern):
             return direction

@@ -25,7 +25,7 @@ import pandas as pd
 
 from .names import resolve_metric
 from .stats import LEVEL, Interval, mean_interval, paired_interval, seeds_needed
-from .table import direction_of, improvement_sign, shortfall
+from .table import direction_of, improvement_sign, shortfall, workload_prefixes
 
 __all__ = ["VERDICTS", "CONDITIONS", "ALPHA", "Condition", "verdict", "verdict_text", "differences", "detections"]
 
@@ -100,10 +100,12 @@ def _needed(change: float, sd: float, power: float) -> int | None:
     return seeds_needed(change, sd, power=power)
 
 
-def _judged(metric: str, b: np.ndarray, c: np.ndarray, power: float) -> dict[str, Any]:
-    """The row of one metric: means, difference and its interval, improvement, verdict."""
+def _judged(metric: str, b: np.ndarray, c: np.ndarray, power: float,
+            prefixes: Sequence[str] = ()) -> dict[str, Any]:
+    """The row of one metric: means, difference and its interval, improvement, verdict.
+    ``prefixes``: the workloads' column prefixes, so a workload's column is judged as its own."""
     raw = paired_interval(b, c)
-    direction = direction_of(metric)
+    direction = direction_of(metric, prefixes)
     sign = improvement_sign(direction)
     if direction == "closer-to-1":
         gain = shortfall(b) - shortfall(c)
@@ -137,10 +139,11 @@ def differences(runs: pd.DataFrame, conditions: Sequence[Condition], metrics: li
                 power: float) -> pd.DataFrame:
     """One row per condition and metric (``differences.csv``)."""
     out = []
+    prefixes = workload_prefixes(runs.columns)
     for condition in conditions:
         base_block, cand_block = _blocks(runs, condition.code, base, cand, metrics)
         for j, metric in enumerate(metrics):
-            row = _judged(metric, base_block[:, j], cand_block[:, j], power)
+            row = _judged(metric, base_block[:, j], cand_block[:, j], power, prefixes)
             out.append({"condition": condition.code, "stress_file": condition.stress_file, **row})
     frame = pd.DataFrame(out)
     frame["seeds_needed"] = frame["seeds_needed"].astype("Int64")
