@@ -53,6 +53,7 @@ class FleetRuntime:
             rngs["pacing"].integers(0, 2**20, size=n)
             if (config.rounds.pacing is not None if paced is None else paced) else np.zeros(n, np.int64)
         )
+        self._paced: dict[int, list[tuple[np.ndarray, np.ndarray]]] = {}  # see _paced_index
         self.last_participation = np.full(n, -np.inf)
         self.participations = np.zeros(n, dtype=np.int32)
         self.group = fleet.group
@@ -95,6 +96,11 @@ class FleetRuntime:
         Within one period the slice from ``lo`` up is in phase (hence time) order and the
         wrapped slice from 0 comes after it; successive periods follow each other.
         """
+        return self._ticks(start, end, lambda k: (self.order, self.sorted_phase))
+
+    def _ticks(self, start: float, end: float, index) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`ticks` over the devices ``index(k)`` gives for period k: (devices in phase
+        order, their phases)."""
         period = self.checkin_every
         devices, times = [], []
         a = start
@@ -102,29 +108,51 @@ class FleetRuntime:
             b = min(end, a + period)
             lo = a % period
             hi = lo + (b - a)
-            i0 = np.searchsorted(self.sorted_phase, lo, side="left")
+            k = int(np.floor(a / period))
+            order, phases = index(k)
+            i0 = np.searchsorted(phases, lo, side="left")
             if hi <= period:
-                i1 = np.searchsorted(self.sorted_phase, hi, side="left")
-                idx = np.arange(i0, i1)
+                i1 = np.searchsorted(phases, hi, side="left")
+                picked, phase = order[i0:i1], phases[i0:i1]
             else:
-                i1 = np.searchsorted(self.sorted_phase, hi - period, side="left")
-                idx = np.concatenate([np.arange(i0, self.sorted_phase.size), np.arange(0, i1)])
-            phase = self.sorted_phase[idx]
-            devices.append(self.order[idx])
+                order_next, phases_next = index(k + 1)  # ticks past the period's end: its next tick
+                i1 = np.searchsorted(phases_next, hi - period, side="left")
+                picked = np.concatenate([order[i0:], order_next[:i1]])
+                phase = np.concatenate([phases[i0:], phases_next[:i1]])
+            devices.append(picked)
             times.append(a + (phase - lo) % period)
             a = b
         if len(devices) == 1:
             return devices[0], times[0]
         return np.concatenate(devices), np.concatenate(times)
 
+    def _paced_index(self, stretch: int):
+        """For stretch m: period k's devices that may check in (those with (k + offset) % m
+        == 0), in phase order, as a function of k. The devices are sorted once per m by
+        offset % m, then phase; a few such orders are kept."""
+        cached = self._paced.get(stretch)
+        if cached is None:
+            residue = self.pace_offset[self.order] % stretch
+            by_residue = np.argsort(residue, kind="stable")  # phase order kept within a residue
+            order = self.order[by_residue]
+            phases = self.sorted_phase[by_residue]
+            bounds = np.searchsorted(residue[by_residue], np.arange(stretch + 1), side="left")
+            cached = [(order[bounds[r]:bounds[r + 1]], phases[bounds[r]:bounds[r + 1]]) for r in range(stretch)]
+            if len(self._paced) >= 4:
+                self._paced.pop(next(iter(self._paced)))
+            self._paced[stretch] = cached
+        return lambda k: cached[(-k) % stretch]
+
     def free_ticks(self, start: float, end: float) -> tuple[np.ndarray, np.ndarray]:
         """Ticks in [start, end) of devices that could check in (memory fits, not busy or
-        resting, and with pacing not told to stay away), sorted by time. Nothing is observed."""
-        devices, times = self.ticks(start, end)
-        keep = self.capable[devices] & (self.free_at[devices] <= times)
+        resting, and with pacing not told to stay away), sorted by time. Nothing is observed.
+        At stretch m only the ticks k with (k + pace_offset) % m == 0 are looked at: the
+        devices of one offset residue per period (:meth:`_paced_index`)."""
         if self.stretch > 1:
-            k = np.rint((times - self.fleet.checkin_phase_s[devices]) / self.checkin_every).astype(np.int64)
-            keep &= (k + self.pace_offset[devices]) % self.stretch == 0
+            devices, times = self._ticks(start, end, self._paced_index(self.stretch))
+        else:
+            devices, times = self.ticks(start, end)
+        keep = self.capable[devices] & (self.free_at[devices] <= times)
         return devices[keep], times[keep]
 
     def eligible(self, devices: np.ndarray, times: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

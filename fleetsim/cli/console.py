@@ -115,9 +115,12 @@ def read_config(
         names["horizon.duration"] = "--days"
     try:
         config = load_config(path, extra)
-        # An unimportable plug-in fails now, naming the file.
-        policy = make_policy(config.selection.policy, config.selection.params, source=f"{path}: selection")
-        check_memory(config, float(policy.window_s), str(path), names=names)
+        # An unimportable plug-in fails now, naming the file (and the workload's key path).
+        for job in config.jobs:
+            where = "selection" if not config.workloads else f"workloads.{job.name}.selection"
+            selection = job.config.selection
+            policy = make_policy(selection.policy, selection.params, source=f"{path}: {where}")
+            check_memory(job.config, float(policy.window_s), str(path), names=names)
     except ConfigError as exc:
         lines = exc.problems
         if devices is not None:

@@ -78,7 +78,12 @@ def apply_overrides(raw: dict[str, Any], overrides: list[str], source: str = "<c
         node: Any = data
         try:
             for part in parts[:-1]:
-                node = node[int(part)] if isinstance(node, list) else node.setdefault(part, {})
+                if isinstance(node, list):
+                    node = node[int(part)]
+                else:
+                    if node.get(part) is None:  # a key written bare (null) holds a mapping once set into
+                        node[part] = {}
+                    node = node[part]
             last = parts[-1]
             if isinstance(node, list):
                 node[int(last)] = value

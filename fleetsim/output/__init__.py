@@ -20,11 +20,11 @@ from .files import (
     write_csv,
 )
 from .folders import KINDS, MARKER, atomic_folder, check_target, claim_study, clean_leftovers, marker_text, read_marker
-from .run import event_frame, read_summary, write_run
+from .run import WORKLOADS, event_frame, read_summary, write_run
 
 __all__ = [
     "write_run", "atomic_folder", "atomic_text", "atomic_save", "event_frame", "read_summary", "PARTIAL",
     "MARKER", "KINDS", "read_marker", "marker_text", "check_target", "claim_study", "clean_leftovers",
     "safe_name", "SAFE_NAME_LENGTH", "inside", "escape_cell", "unescape_cell", "csv_frame", "unescape_frame",
-    "write_csv",
+    "write_csv", "WORKLOADS",
 ]
