@@ -46,11 +46,13 @@ def _load_line(load: dict[str, Any] | None) -> str:
 
 
 def _header(summary: dict[str, Any]) -> list[str]:
+    replay = summary.get("replay")
     return [
         f"{summary['scenario']}",
         f"  seed {summary['seed']}, config {summary['config_hash']}, {summary['devices']:,} devices, "
         f"{summary['simulated_hours']:g} simulated hours from {summary['horizon_start']}, policy {summary['policy']}",
-    ]
+    ] + ([f"  signals replayed from logs of {replay['devices']:,} devices, {replay['logs_start']} to "
+          f"{replay['logs_end']} (traits, batteries, workload and rounds from the fleet file)"] if replay else [])
 
 
 def _sharing_lines(summary: dict[str, Any]) -> list[str]:

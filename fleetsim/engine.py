@@ -12,7 +12,9 @@ Random streams (each a ``numpy.random.Generator`` derived from the seed and its 
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Callable, Generator
+from datetime import datetime, timezone
 from typing import Any
 
 import numpy as np
@@ -20,16 +22,18 @@ import pandas as pd
 import simpy
 
 from .config import Config, check_memory
+from .desk import Desk
 from .errors import FleetsimError
 from .events import EventLog
 from .fleet import Fleet, sample_fleet, stream
 from .policies import make_policy
 from .record import RunRecord
+from .replay import Replay, ReplaySignals
 from .result import Result
 from .runtime import FleetRuntime
-from .desk import Desk
 from .server import RoundServer
 from .signals import build_signal_tables
+from .units import format_instant
 
 __all__ = ["Result", "simulate", "STREAMS"]
 
@@ -53,6 +57,7 @@ def simulate(
     config: Config,
     seed: int = 0,
     on_progress: Callable[[float], None] | None = None,
+    replay: Replay | None = None,
 ) -> Result:
     """Simulate the fleet and the server's rounds over the configured horizon.
 
@@ -65,6 +70,11 @@ def simulate(
     FleetsimError if ``seed`` is not a whole number from 0 to 2**63 - 1, and ConfigError if
     the selection policy cannot be built or the run would need more memory than the machine
     allows (:func:`fleetsim.config.check_memory`), before anything large is allocated.
+
+    ``replay`` (:mod:`fleetsim.replay`): the logged devices take the fleet's place, their
+    logged signals the chains' (their traits, batteries, workload and rounds from ``config``);
+    FleetsimError if a logged device type or region is not in the file's fleet, or the
+    horizon does not lie within the logs' span.
     """
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or not 0 <= seed <= MAX_SEED:
         raise FleetsimError(f"seed: expected a whole number from 0 to 2**63 - 1 (got {seed!r})")
@@ -73,13 +83,17 @@ def simulate(
     for job, policy in zip(jobs, policies, strict=True):
         check_memory(job.config, policy.window_s, source="config")
     rngs = {name: stream(seed, name) for name in STREAMS}
-    fleet = sample_fleet(config, seed)
     horizon_s = float(config.horizon.duration)
+    fleet = sample_fleet(config, seed, None if replay is None else _replay_pairs(config, replay, horizon_s))
     tail_s = max(job.config.rounds.selection_timeout + job.config.rounds.report_deadline for job in jobs) + 2 * 3600.0
     warmup_s = warmup_of(config)
     tables = build_signal_tables(config, fleet.type_names, fleet.region_names, horizon_s + tail_s, -warmup_s)
     paced = any(job.config.rounds.pacing is not None for job in jobs)
-    runtime = FleetRuntime(jobs[0].config, fleet, tables, rngs, paced=paced)
+    signals = None
+    if replay is not None:  # the logs hold the signals as they were: no settled state to derive
+        tables = dataclasses.replace(tables, covers=np.zeros_like(tables.covers), has_settled=False)
+        signals = ReplaySignals(tables, fleet.group, replay)
+    runtime = FleetRuntime(jobs[0].config, fleet, tables, rngs, paced=paced, signals=signals)
     views = [runtime] if len(jobs) == 1 else [runtime.for_workload(job.config) for job in jobs]
     logs = [EventLog() for _ in jobs]
     servers = [RoundServer(job.config, view, policy, log, rngs)
@@ -121,8 +135,44 @@ def simulate(
         policy=_policy_name(policies[0]) if len(jobs) == 1 else ", ".join(
             f"{name}: {_policy_name(policy)}" for name, policy in zip(names, policies, strict=True)),
         policies={name: _policy_name(policy) for name, policy in zip(names, policies, strict=True)},
+        replay=None if replay is None else _replay_part(config, replay),
     )
     return Result(record)
+
+
+def _replay_part(config: Config, replay: Replay) -> dict[str, Any]:
+    """What summary.json says of replayed logs: their devices and span (ISO 8601 UTC)."""
+    start = config.horizon.start.timestamp()
+    return {
+        "devices": replay.size,
+        "logs_start": format_instant(datetime.fromtimestamp(start + replay.first_s, tz=timezone.utc)),
+        "logs_end": format_instant(datetime.fromtimestamp(start + replay.last_s, tz=timezone.utc)),
+    }
+
+
+def _replay_pairs(config: Config, replay: Replay, horizon_s: float) -> np.ndarray:
+    """Each logged device's (type, region) pair in the file's fleet; refuses names the file
+    does not know and a horizon outside the logs' span."""
+    types, regions = list(config.fleet.device_types), list(config.fleet.regions)
+    for names, known, key in ((replay.device_type, types, "fleet.device_types"),
+                              (replay.region, regions, "fleet.regions")):
+        unknown = sorted(set(names.tolist()) - set(known))
+        if unknown:
+            raise FleetsimError(f"replay: the logs name {', '.join(map(repr, unknown[:5]))}, not in the fleet "
+                                f"file's {key} ({', '.join(known)}); add them or fit the file from these logs")
+    if replay.first_s > 0.0 or replay.last_s < horizon_s:
+        start = config.horizon.start.timestamp()
+        def at(s: float) -> str:
+            return format_instant(datetime.fromtimestamp(start + s, tz=timezone.utc))
+        raise FleetsimError(
+            f"replay: the horizon {at(0.0)} to {at(horizon_s)} is not within the logs' span {at(replay.first_s)} "
+            f"to {at(replay.last_s)} (it starts {max(replay.first_s, 0.0) / 3600:.1f} h before the logs do "
+            f"and ends {max(horizon_s - replay.last_s, 0.0) / 3600:.1f} h after); set horizon.start and "
+            "horizon.duration within the logs")
+    lookup_t = {name: i for i, name in enumerate(types)}
+    lookup_r = {name: i for i, name in enumerate(regions)}
+    return np.array([lookup_t[t] * len(regions) + lookup_r[r] for t, r in zip(replay.device_type, replay.region,
+                                                                              strict=True)], dtype=np.int64)
 
 
 def _policy_name(policy: object) -> str:

@@ -89,17 +89,22 @@ def _draw(rng: np.random.Generator, trait: Trait, size: int, per_unit: float = 1
     return median * np.exp(trait.spread * rng.standard_normal(size))
 
 
-def sample_fleet(config: Config, seed: int) -> Fleet:
+def sample_fleet(config: Config, seed: int, pairs: np.ndarray | None = None) -> Fleet:
     """Draw ``config.fleet.devices`` devices: each its (type, region) pair from the fleet's joint
     mix (:meth:`fleetsim.config.FleetSpec.joint_mix`), its traits lognormal from the pair's
-    spec (:meth:`fleetsim.config.FleetSpec.group_spec`)."""
+    spec (:meth:`fleetsim.config.FleetSpec.group_spec`). ``pairs`` (type index x regions +
+    region index, one per device) gives the devices' pairs instead, as for logged devices."""
     spec = config.fleet
-    n = spec.devices
     rng = stream(seed, "fleet")
     type_names = tuple(spec.device_types)
     region_names = tuple(spec.regions)
     joint = np.array(spec.joint_mix()).reshape(-1)  # [type * regions + region]
-    pair = rng.choice(joint.size, size=n, p=joint / joint.sum())
+    if pairs is None:
+        n = spec.devices
+        pair = rng.choice(joint.size, size=n, p=joint / joint.sum())
+    else:
+        pair = np.asarray(pairs, dtype=np.int64)
+        n = pair.size
     device_type = (pair // len(region_names)).astype(np.int16)
     region = (pair % len(region_names)).astype(np.int16)
 

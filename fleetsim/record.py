@@ -40,6 +40,7 @@ class RunRecord:
     policy: str
     source: str | None = None
     policies: dict[str, str] | None = None  # each workload's policy, by workload name
+    replay: dict[str, Any] | None = None  # with replayed logs: their devices and span (summary.json `replay`)
 
     def for_workload(self, name: str) -> RunRecord:
         """The record of one workload of several: its Config (:attr:`fleetsim.config.Config.jobs`)
@@ -58,7 +59,7 @@ class RunRecord:
         return RunRecord(
             config=jobs[name].config, seed=self.seed, fleet=self.fleet,
             participations=rows(self.participations), rounds=rows(self.rounds), census=rows(self.census),
-            policy=(self.policies or {}).get(name, self.policy), source=self.source,
+            policy=(self.policies or {}).get(name, self.policy), source=self.source, replay=self.replay,
         )
 
     @property

@@ -36,7 +36,7 @@ class FleetRuntime:
     """Dynamic per-device state and the queries the server makes of the fleet."""
 
     def __init__(self, config: Config, fleet: Fleet, tables: SignalTables, rngs: dict[str, np.random.Generator],
-                 paced: bool | None = None):
+                 paced: bool | None = None, signals: SignalState | None = None):
         self.config = config
         self.fleet = fleet
         self.tables = tables
@@ -63,7 +63,7 @@ class FleetRuntime:
         self.by_group = np.argsort(self.group, kind="stable")
         self.group_size = np.bincount(self.group, minlength=n_groups)
         self.group_start = np.concatenate([[0], np.cumsum(self.group_size)[:-1]])
-        self.signals = SignalState(tables, self.group)
+        self.signals = signals if signals is not None else SignalState(tables, self.group)
         self.battery = BatteryState(config, fleet.type_names, fleet.region_names, self.group)
 
     def _set_workload(self, config: Config) -> None:

@@ -79,14 +79,17 @@ def local_hours(zone: str, start: datetime, steps: int, step_s: float = STEP_S) 
 
 def chain_parameters(
     config: Config, type_name: str, region_name: str, hours: np.ndarray, weekend: np.ndarray,
-    step_times: np.ndarray | None = None,
+    step_times: np.ndarray | None = None, marginal: bool = False,
 ) -> tuple[np.ndarray, np.ndarray]:
     """On-probability and mean on-duration (s) of each chain at each step, [CHAINS, steps].
 
     ``hours`` and ``weekend`` give each step's local hour and whether its local day is a
     weekend day of the region. The signals' own chains are derived from the file's signal
     probabilities as the module says; behaviour-shift disruptions (``step_times``: each
-    step's start, s) change a signal's probability for their window before that.
+    step's start, s) change a signal's probability for their window before that. With
+    ``marginal`` the settled state is left out and each signal's chain has the file's own
+    values: the law of each signal alone (as a replay's bridge fills the time between logged
+    states, :mod:`fleetsim.bridge`).
     """
     spec = config.fleet.group_spec(type_name, region_name)
     steps = hours.size
@@ -121,7 +124,7 @@ def chain_parameters(
             values = hourly[s][weekend.astype(np.int64), shifted] * event.factor
             p[1 + s, inside] = values[inside]
     p = np.clip(p, 0.0, _P_MAX)
-    if spec.settled is not None:
+    if spec.settled is not None and not marginal:
         fill(spec.settled, SETTLED)
         p[SETTLED] = np.clip(p[SETTLED], 0.0, _P_MAX)
         for name in spec.settled.turns_on:
@@ -246,12 +249,14 @@ class SignalTables:
 
 
 def build_signal_tables(
-    config: Config, type_names: tuple[str, ...], region_names: tuple[str, ...], end_s: float, begin_s: float = 0.0
+    config: Config, type_names: tuple[str, ...], region_names: tuple[str, ...], end_s: float, begin_s: float = 0.0,
+    marginal: bool = False,
 ) -> SignalTables:
     """Tables for every (type, region) group from ``begin_s`` minus a settling time to ``end_s``.
 
     The settling time (12 of the longest mean on-durations, 6 hours to 3 days) lets each
-    chain start from its own law rather than an arbitrary state.
+    chain start from its own law rather than an arbitrary state. ``marginal``: each signal
+    as a chain of its own, no settled state (:func:`chain_parameters`).
     """
     fleet = config.fleet
     longest = 0.0
@@ -286,9 +291,9 @@ def build_signal_tables(
         for ri, rname in enumerate(region_names):
             g = ti * len(region_names) + ri
             hours, weekend = calendars[rname]
-            p[g], d[g] = chain_parameters(config, tname, rname, hours, weekend, step_times)
+            p[g], d[g] = chain_parameters(config, tname, rname, hours, weekend, step_times, marginal)
             settled = fleet.group_spec(tname, rname).settled
-            if settled is not None:
+            if settled is not None and not marginal:
                 covers[g] = [s in settled.turns_on for s in SIGNALS]
     rate = 1.0 / ((1.0 - p) * d)
     decay = np.exp(-rate * STEP_S)

@@ -27,8 +27,9 @@ Everything is simulated the slow, obvious way, with one simpy process per chain 
   both rates are constant, so drawing an exponential and redrawing it at the step's end
   when it overshoots is exact (the exponential is memoryless);
 - a device ticks at ``phase + k * checkin_every``; at a tick during a round's selection it
-  checks in if it is eligible (memory fits, not working, not resting, every required signal
-  on, and a battery level at or above the minimum); the round accepts check-ins first come,
+  checks in if it is eligible for the round's workload (memory fits, not working, not
+  resting, every required signal on, and a battery level at or above the minimum); the
+  round accepts check-ins first come,
   first served. An accepted device is working, and a device that took part in a round never
   checks in to it again (even with no rest), so a device is in a round at most once and
   checks in at its first eligible tick: the engine's "one candidate per device and
@@ -70,16 +71,34 @@ Everything is simulated the slow, obvious way, with one simpy process per chain 
   through the upload only); interrupted, it stays on time with that dropout cause and
   phase "unmasking" and ends there; the unmasking's bytes and radio energy count for the
   time spent in it;
-- a server process runs the round protocol: accept up to ceil(target * over_selection)
-  until the selection timeout (fewer than min_reports accepted: selection-timeout), then wait for
-  target_reports reports or the report deadline counted from the end of selection, commit
-  with at least min_reports (with secure aggregation also at least ceil(threshold *
-  accepted) answers to the unmasking, else "unmasking-failed"; the round then ends at its
-  close plus the longest unmasking time of its on-time reporters), wait the aggregation
-  time, open the next round; an accepted device rests for ``rest`` after its participation
-  ends. The server starts ``horizon.warmup`` before the horizon (unset: the rest period, at
-  most two days) and the rounds it opens before the horizon start are not reported, as the
-  engine documents.
+- each round runs the round protocol in a process of its own: accept up to
+  ceil(target * over_selection) until the selection timeout (fewer than min_reports
+  accepted: selection-timeout), then wait for target_reports reports or the report deadline
+  counted from the end of selection, commit with at least min_reports (with secure
+  aggregation also at least ceil(threshold * accepted) answers to the unmasking, else
+  "unmasking-failed"; the round then ends at its close plus the longest unmasking time of
+  its on-time reporters), then wait the aggregation time; an accepted device rests for
+  ``rest`` after its participation ends. The server starts ``horizon.warmup`` before the
+  horizon (unset: the longest rest period of its workloads, at most two days) and the rounds
+  it opens before the horizon start are not reported, as the engine documents;
+- several workloads (``config.jobs``, each a Config of one workload with its share) share
+  one selection desk, a server process that opens one round at a time: every tick during a
+  selection is that round's, judged by its workload's memory, required signals and minimum
+  battery. A workload is ready when it has no round open or its round has ended and its
+  aggregation time passed (one round in flight each). Whenever the desk is free (at the
+  start, at the end of a selection, or when a workload becomes ready while no selection
+  runs) it opens a round of a ready workload, none while none is; of several ready ones,
+  ``sharing.rule: priority`` takes the first in the order of ``workloads``, ``shares`` the
+  one with the least selection time held so far (from the warm-up's first round) divided
+  by its share, ties by that order. The desk is free again when the selection ends, so one
+  workload's round may collect reports while another's selects. A device is in one round
+  at a time whatever its workload (working and waiting are the device's), and after a
+  participation it rests for that round's workload's ``rest``, during which no round
+  takes it. Each workload's rounds are numbered from 0 after the warm-up; with several
+  workloads both frames are led by a ``workload`` column (the names, as strings), rows in
+  the order of ``workloads``. A file of one workload runs as it did before there were
+  several: the desk opens that workload's next round once the last has ended and its
+  aggregation time passed.
 
 Disruptions, selection policies other than first-come, pacing and more than one round in
 flight are not modelled.
@@ -255,6 +274,7 @@ class _Part:
     device: int
     accepted_s: float
     battery_start_pct: float
+    job: int = 0  # the index of the round's workload in ``config.jobs``
     started_s: float = _INF
     ended_s: float = _INF
     outcome: str = ""
@@ -268,6 +288,7 @@ class _Part:
 @dataclass
 class _Round:
     index: int
+    job: _Job = field(repr=False)  # the round's workload
     opened_s: float
     full: simpy.Event
     selected: simpy.Event  # the selection's end
@@ -293,15 +314,39 @@ class _Device:
     region: int
     on: list[bool]  # the signals idle, charging, unmetered
     chain: list[bool]  # the chains settled, own idle, own charging, own unmetered
-    capable: bool
-    working: bool = False
+    working: bool = False  # in a round of any workload, from its acceptance to its end
     free_at: float = -_INF
     change: simpy.Event | None = None  # succeeded on any signal change while working
     waiting: bool = False  # accepted, waiting for the selection's end (after-selection)
     lost: set[int] = field(default_factory=set)  # required signals that turned off while waiting
+    required: list[int] = field(default_factory=list)  # the signals its current round's workload requires
     parts: list[_Part] = field(default_factory=list)
     score: float | None = None  # the battery's normal score Z at its last record (None: no look yet)
     score_s: float = 0.0  # the time of that record
+
+
+@dataclass
+class _Job:
+    """One workload as the server runs it (an entry of ``config.jobs``): its Config of one
+    workload, what its eligibility reads of it, its rounds and the desk time they held."""
+
+    index: int
+    name: str
+    config: Config
+    share: float
+    required: list[int]  # its required signals, in signal order
+    capable: list[bool]  # by device: the device's memory fits its model
+    rounds: list[_Round] = field(default_factory=list, repr=False)
+    desk_s: float = 0.0  # the selection time its rounds have held the desk, from the warm-up on
+    running: simpy.Process | None = None  # its last round's process (selection to aggregation)
+
+    @property
+    def after_selection(self) -> bool:
+        return self.config.rounds.configure == "after-selection"
+
+    @property
+    def secure(self):
+        return self.config.rounds.secure_aggregation
 
 
 @dataclass
@@ -315,6 +360,20 @@ class _Clock:
     charge_w: float
 
 
+def _jobs(config: Config, fleet: Fleet) -> list[_Job]:
+    """Each workload of ``config`` with its requirements; its round protocol's options (when
+    tasks start, secure aggregation, docs/fleet-file.md) are read from its Config where used."""
+    return [
+        _Job(
+            index=w, name=job.name, config=job.config, share=float(job.share),
+            # In signal order, so that signals ending at once name the first of idle, charging, unmetered.
+            required=sorted(SIGNAL_NAMES.index(s) for s in job.config.workload.requires),
+            capable=[bool(m >= job.config.workload.memory_needed) for m in fleet.memory_bytes],
+        )
+        for w, job in enumerate(config.jobs)
+    ]
+
+
 class _Oracle:
     def __init__(self, config: Config, seed: int):
         self.config = config
@@ -322,6 +381,9 @@ class _Oracle:
         # An explicit random stream of its own (never the engine's streams).
         self.rng = random.Random(f"oracle-{seed}")
         self.horizon_s = float(config.horizon.duration)
+        jobs = config.jobs  # each workload as a Config of one workload, in the order of ``workloads``
+        sharing = getattr(config, "sharing", None)
+        self.rule = sharing.rule if sharing is not None else "priority"  # unset: priority
         regions = config.fleet.regions
         fleet = self.fleet
         n_types, n_regions = len(fleet.type_names), len(fleet.region_names)
@@ -337,20 +399,21 @@ class _Oracle:
         # of the longest mean on-durations cover the relaxation exp(-integral of (a + b)),
         # with a + b = 1 / ((1 - p) d) >= 1/d in every step (Ross, section 6.4, from memory).
         self.settle_s = max(6 * 3600.0, 5.0 * longest)
-        # The server's own warm-up (``horizon.warmup``; unset: the rest period, at most two
-        # days, as the config documents): rounds run before the horizon so that rest periods
-        # are in their running state at its start; those rounds are not reported.
+        # The server's own warm-up (``horizon.warmup``; unset: the longest rest period of the
+        # workloads, at most two days, as the config documents): rounds run before the horizon
+        # so that rest periods are in their running state at its start; those rounds are not
+        # reported.
         if not hasattr(config.horizon, "warmup"):
             self.server_warmup_s = 0.0  # a config without the key: no server warm-up
         elif config.horizon.warmup is not None:
             self.server_warmup_s = float(config.horizon.warmup)
         else:
-            self.server_warmup_s = min(config.rounds.rest, 2 * 86400.0)
+            self.server_warmup_s = min(max(job.config.rounds.rest for job in jobs), 2 * 86400.0)
         self.warmup_s = self.server_warmup_s + self.settle_s
         # simpy's clock starts before the warm-ups: simulated time 0 is the horizon start.
         self.env = simpy.Environment(initial_time=-self.warmup_s)
-        rounds = config.rounds
-        tail = rounds.selection_timeout + rounds.report_deadline + 2 * 86400.0
+        tail = max(job.config.rounds.selection_timeout + job.config.rounds.report_deadline for job in jobs)
+        tail += 2 * 86400.0
         region_specs = [regions[name] for name in fleet.region_names]
         self.grid = _Grid(config.horizon.start, -self.warmup_s, self.horizon_s + tail,
                           [r.timezone for r in region_specs],
@@ -381,9 +444,6 @@ class _Oracle:
             self.beta[key] = (_beta_shape(levels.unplugged.mean, levels.unplugged.sd),
                               _beta_shape(levels.charging.mean, levels.charging.sd))
             self.correlation_s[key] = float(levels.correlation_time)
-        work = config.workload
-        # In signal order, so that signals ending at once name the first of idle, charging, unmetered.
-        self.required = sorted(SIGNAL_NAMES.index(s) for s in work.requires)
         self.devices: list[_Device] = []
         for i in range(fleet.size):
             self.devices.append(_Device(
@@ -392,13 +452,9 @@ class _Oracle:
                 region=int(fleet.region[i]),
                 on=[False, False, False],
                 chain=[False, False, False, False],
-                capable=bool(fleet.memory_bytes[i] >= work.memory_needed),
             ))
-        # The round protocol's options (docs/fleet-file.md): when tasks start, and secure aggregation.
-        self.after_selection = config.rounds.configure == "after-selection"
-        self.secure = config.rounds.secure_aggregation
-        self.round: _Round | None = None
-        self.rounds: list[_Round] = []
+        self.jobs = _jobs(config, fleet)
+        self.round: _Round | None = None  # the round selecting now, or the last one that did
         self.tasks: list[simpy.Process] = []
 
     # ------------------------------------------------------------------ signals
@@ -438,7 +494,7 @@ class _Oracle:
         settled = dev.chain[0]
         on = [dev.chain[1 + s] or (settled and covers[s]) for s in range(len(SIGNAL_NAMES))]
         if dev.waiting:
-            dev.lost.update(s for s in self.required if not on[s])
+            dev.lost.update(s for s in dev.required if not on[s])
         if on != dev.on:
             dev.on = on
             if dev.change is not None and not dev.change.triggered:
@@ -480,38 +536,41 @@ class _Oracle:
             yield env.timeout(every)
 
     def _tick(self, dev: _Device) -> None:
+        """A check-in tick: the selecting round's (if any) to judge by its workload's needs."""
         rnd = self.round
         if rnd is None or not rnd.selecting:
             return
-        now = self.env.now
-        if not dev.capable or dev.working or now < dev.free_at:
+        now, job = self.env.now, rnd.job
+        if not job.capable[dev.index] or dev.working or now < dev.free_at:
             return
-        if dev.parts and dev.parts[-1].round == rnd.index:
+        if dev.parts and (dev.parts[-1].job, dev.parts[-1].round) == (job.index, rnd.index):
             return  # a round takes a device once (common practice), even with no rest
-        if not all(dev.on[s] for s in self.required):
+        if not all(dev.on[s] for s in job.required):
             return
         battery = self._look(dev)
-        if battery < self.config.workload.min_battery:
+        if battery < job.config.workload.min_battery:
             return
         rnd.checkins += 1
-        if rnd.accepted >= self.config.rounds.accept_count:
+        accept_count = job.config.rounds.accept_count
+        if rnd.accepted >= accept_count:
             return
         rnd.accepted += 1
-        part = _Part(round=rnd.index, device=dev.index, accepted_s=now, battery_start_pct=battery)
+        part = _Part(round=rnd.index, device=dev.index, accepted_s=now, battery_start_pct=battery, job=job.index)
         dev.parts.append(part)
         rnd.parts.append(part)
-        dev.working = True
+        dev.working, dev.required = True, job.required
         self.tasks.append(self.env.process(self._task(dev, rnd, part)))
-        if rnd.accepted == self.config.rounds.accept_count:
+        if rnd.accepted == accept_count:
             rnd.full.succeed()
 
     # ------------------------------------------------------------------ the task
 
-    def _plan(self, i: int, accepted: int) -> _Plan:
-        """Device i's task in a round that accepted ``accepted`` devices, written out from the
-        protocol's arithmetic (docs/fleet-file.md): the local work cap, the update encoding and,
-        when on, secure aggregation's phases. No compute-drift or network disruption (factor 1)."""
-        fleet, work = self.fleet, self.config.workload
+    def _plan(self, i: int, accepted: int, job: _Job) -> _Plan:
+        """Device i's task in a round of ``job`` that accepted ``accepted`` devices, written out
+        from the protocol's arithmetic (docs/fleet-file.md): the local work cap, the update
+        encoding and, when on, secure aggregation's phases. No compute-drift or network
+        disruption (factor 1)."""
+        fleet, work = self.fleet, job.config.workload
         enc = work.update_encoding
         down_bps, up_bps = float(fleet.down_mbps[i]) * 1e6, float(fleet.up_mbps[i]) * 1e6
         radio_w, train_w = float(fleet.radio_power_w[i]), float(fleet.train_power_w[i])
@@ -532,7 +591,7 @@ class _Oracle:
             return _Phase(name, fixed + down * 8.0 / down_bps + up * 8.0 / up_bps, radio_w, followed, down, up)
 
         download = timed("download", 0.0, work.model_size, 0.0)
-        secure, unmask = self.secure, None
+        secure, unmask = job.secure, None
         if secure is None:
             keep, bits = enc.keep_fraction, enc.bits_per_weight
             # Sparsified: a 32-bit index per kept weight or a one-bit-per-weight mask, the smaller.
@@ -554,14 +613,14 @@ class _Oracle:
         return _Plan(phases, unmask, steps, batch, local_s, weight=float(min(used_n, steps * batch)))
 
     def _task(self, dev: _Device, rnd: _Round, part: _Part):
-        env = self.env
-        if self.after_selection:
+        env, job = self.env, rnd.job
+        if job.after_selection:
             dev.waiting, dev.lost = True, set()
             yield rnd.selected  # reserved, not working, until the selection ends
             dev.waiting = False
         part.started_s = env.now
-        plan = part.plan = self._plan(dev.index, rnd.accepted)
-        i, work = dev.index, self.config.workload
+        plan = part.plan = self._plan(dev.index, rnd.accepted, job)
+        i, work = dev.index, job.config.workload
         hazard = work.crash_rate / 3600.0
         clock = _Clock(
             level=part.battery_start_pct,
@@ -597,7 +656,7 @@ class _Oracle:
         else:
             part.outcome = "on-time"
             rnd.reports += 1
-            if rnd.reports == self.config.rounds.target_reports:
+            if rnd.reports == job.config.rounds.target_reports:
                 rnd.target.succeed()
             if plan.unmask is not None:
                 cause = yield from self._unmasking(dev, rnd, part, plan.unmask, clock)
@@ -608,7 +667,7 @@ class _Oracle:
         part.ended_s = env.now
         self._record(dev, level)
         dev.working = False
-        dev.free_at = env.now + self.config.rounds.rest
+        dev.free_at = env.now + job.config.rounds.rest  # no workload takes it while it rests
 
     def _unmasking(self, dev: _Device, rnd: _Round, part: _Part, unmask: _Phase, clock: _Clock):
         """Secure aggregation after an on-time upload: wait for the round's close, then answer
@@ -628,7 +687,7 @@ class _Oracle:
         ``close``: "stop" (the round's close stops the phase: "stopped"), "end" (the close
         ends it: the wait for the close), "ignore".
         """
-        env, work = self.env, self.config.workload
+        env, work = self.env, rnd.job.config.workload
         part.done.setdefault(phase.name, 0.0)
         phase_end = env.now + phase.length
         while True:
@@ -649,7 +708,7 @@ class _Oracle:
             part.done[phase.name] += elapsed
             clock.level = min(clock.level + slope * elapsed, 100.0)
             dev.change = None
-            off = [s for s in self.required if not dev.on[s]]
+            off = [s for s in rnd.job.required if not dev.on[s]]
             if off:
                 return SIGNAL_NAMES[off[0]] + "-ended"
             if timer is not None and timer in fired:
@@ -660,38 +719,69 @@ class _Oracle:
 
     # ------------------------------------------------------------------ the server
 
-    def _server(self):
+    def _desk(self):
+        """The selection desk: opens one round at a time, of a ready workload, until the horizon.
+
+        It is free at the start, whenever a selection ends and whenever a workload becomes
+        ready while no selection runs; each round's reports, close, unmasking and aggregation
+        then run in the round's own process."""
         env = self.env
-        rounds = self.config.rounds
-        index = 0
         yield env.timeout(-self.server_warmup_s - env.now)  # the first round opens here
         while env.now < self.horizon_s:
-            rnd = _Round(index=index, opened_s=env.now, full=env.event(), selected=env.event(),
-                         target=env.event(), close=env.event())
-            index += 1
+            ready = [job for job in self.jobs if self._ready(job)]
+            if not ready:
+                yield env.any_of([job.running for job in self.jobs])  # the first round to end
+                continue
+            job = self._choose(ready)
+            rnd = _Round(index=len(job.rounds), job=job, opened_s=env.now, full=env.event(),
+                         selected=env.event(), target=env.event(), close=env.event())
             self.round = rnd
-            self.rounds.append(rnd)
-            yield env.timeout(rounds.selection_timeout) | rnd.full
-            rnd.selecting = False
-            rnd.selected_s = env.now
-            enough = rnd.accepted >= rounds.required_reports
-            rnd.abandoned = self.after_selection and not enough
-            rnd.selected.succeed()  # after-selection: every accepted device's task starts now
-            if not enough:
-                rnd.status = "selection-timeout"
-            else:
-                if not rnd.target.triggered:
-                    yield env.timeout(rounds.report_deadline) | rnd.target
-                rnd.status = "committed" if rnd.reports >= rounds.required_reports else "report-deadline"
-            rnd.closed = True
-            rnd.closed_s = rnd.ended_s = env.now
-            rnd.close.succeed()  # devices before their upload stop now
-            reporters = [p for p in rnd.parts if p.outcome == "on-time"]
-            if self.secure is not None and reporters:
-                # The unmasking runs [close, close + u_i] for every on-time reporter.
-                rnd.ended_s = rnd.closed_s + max(p.plan.unmask.length for p in reporters)
-                yield env.timeout(rnd.ended_s - env.now)
-            yield env.timeout(rounds.aggregation_time)
+            job.rounds.append(rnd)
+            job.running = env.process(self._round(rnd))
+            yield rnd.selected  # the desk is free once the selection ends
+            job.desk_s += rnd.selected_s - rnd.opened_s
+
+    def _ready(self, job: _Job) -> bool:
+        """Whether ``job`` may open a round now: its last round (if any) has ended and its
+        aggregation time has passed. (A round with no aggregation time frees its workload at
+        its end, in the same instant, though its process has yet to finish.)"""
+        if job.running is None or not job.running.is_alive:
+            return True
+        last = job.rounds[-1]
+        return last.ended_s + job.config.rounds.aggregation_time <= self.env.now
+
+    def _choose(self, ready: list[_Job]) -> _Job:
+        """Of the ready workloads (in the order of ``workloads``), the one the desk opens:
+        ``priority``, the first; ``shares``, the least desk time over share, ties by order."""
+        if self.rule == "shares":
+            return min(ready, key=lambda job: (job.desk_s / job.share, job.index))
+        return ready[0]
+
+    def _round(self, rnd: _Round):
+        """One round of the protocol, from its opening to the end of its aggregation time."""
+        env, job = self.env, rnd.job
+        rounds = job.config.rounds
+        yield env.timeout(rounds.selection_timeout) | rnd.full
+        rnd.selecting = False
+        rnd.selected_s = env.now
+        enough = rnd.accepted >= rounds.required_reports
+        rnd.abandoned = job.after_selection and not enough
+        rnd.selected.succeed()  # after-selection: every accepted device's task starts now
+        if not enough:
+            rnd.status = "selection-timeout"
+        else:
+            if not rnd.target.triggered:
+                yield env.timeout(rounds.report_deadline) | rnd.target
+            rnd.status = "committed" if rnd.reports >= rounds.required_reports else "report-deadline"
+        rnd.closed = True
+        rnd.closed_s = rnd.ended_s = env.now
+        rnd.close.succeed()  # devices before their upload stop now
+        reporters = [p for p in rnd.parts if p.outcome == "on-time"]
+        if job.secure is not None and reporters:
+            # The unmasking runs [close, close + u_i] for every on-time reporter.
+            rnd.ended_s = rnd.closed_s + max(p.plan.unmask.length for p in reporters)
+            yield env.timeout(rnd.ended_s - env.now)
+        yield env.timeout(rounds.aggregation_time)
 
     def run(self) -> OracleResult:
         env = self.env
@@ -701,8 +791,12 @@ class _Oracle:
                     continue  # no settled state: chain 0 is never on
                 env.process(self._chain(dev, c))
             env.process(self._ticks(dev))
-        server = env.process(self._server())
-        env.run(until=server)
+        desk = env.process(self._desk())
+        env.run(until=desk)
+        # Rounds still collecting reports when the desk stops run to their end.
+        running = [job.running for job in self.jobs if job.running is not None and job.running.is_alive]
+        if running:
+            env.run(until=env.all_of(running))
         # Uploads in flight at the last close finish (late) or drop out.
         pending = [task for task in self.tasks if task.is_alive]
         if pending:
@@ -715,19 +809,35 @@ class _Oracle:
         is "unmasking-failed". (The threshold is read as the decimal written, so that
         0.7 x 10 is 7, not the 7.000000000000001 of binary floating point.)"""
         responses = sum(p.survived for p in rnd.parts)
-        if self.secure is not None and rnd.status == "committed":
-            needed = math.ceil(Fraction(repr(self.secure.threshold)) * rnd.accepted)
+        secure = rnd.job.secure
+        if secure is not None and rnd.status == "committed":
+            needed = math.ceil(Fraction(repr(secure.threshold)) * rnd.accepted)
             if responses < needed:
                 rnd.status = "unmasking-failed"
         return responses
 
     def _result(self) -> OracleResult:
-        responses = {r.index: self._settle(r) for r in self.rounds}
-        reported = [r for r in self.rounds if r.opened_s >= 0.0]  # not the warm-up's rounds
-        first = reported[0].index if reported else len(self.rounds)
-        status = {r.index: r.status for r in self.rounds}
+        """The log of the run: one workload's frames as they are, several workloads' frames one
+        after another in the order of ``workloads``, each led by a ``workload`` column."""
+        frames = [self._frames(job) for job in self.jobs]
+        if len(frames) == 1:
+            rounds, parts = frames[0]
+        else:
+            for job, (job_rounds, job_parts) in zip(self.jobs, frames, strict=True):
+                job_rounds.insert(0, "workload", job.name)
+                job_parts.insert(0, "workload", job.name)
+            rounds = pd.concat([r for r, _ in frames], ignore_index=True)
+            parts = pd.concat([p for _, p in frames], ignore_index=True)
+        return OracleResult(rounds=rounds, participations=parts, fleet=self.fleet)
+
+    def _frames(self, job: _Job) -> tuple[pd.DataFrame, pd.DataFrame]:
+        """One workload's rounds and participations after the warm-up, rounds numbered from 0."""
+        responses = {r.index: self._settle(r) for r in job.rounds}
+        reported = [r for r in job.rounds if r.opened_s >= 0.0]  # not the warm-up's rounds
+        first = reported[0].index if reported else len(job.rounds)
+        status = {r.index: r.status for r in job.rounds}
         rows = [self._row(dev, part, status[part.round], first)
-                for dev in self.devices for part in dev.parts if part.round >= first]
+                for dev in self.devices for part in dev.parts if part.job == job.index and part.round >= first]
         parts = pd.DataFrame(rows, columns=_PART_COLUMNS)
         parts = parts.sort_values(["round", "accepted_s"], kind="stable").reset_index(drop=True)
         rounds = pd.DataFrame(
@@ -744,7 +854,7 @@ class _Oracle:
                 "unmask_responses": [responses[r.index] for r in reported],
             }
         )
-        return OracleResult(rounds=rounds, participations=parts, fleet=self.fleet)
+        return rounds, parts
 
     def _row(self, dev: _Device, part: _Part, status: str, first: int) -> dict:
         """A participation's row: its work counted up to its end (each phase's bytes in
@@ -809,15 +919,20 @@ def simulate_oracle(config: Config, seed: int = 0) -> OracleResult:
     """Run the literal reference simulation of ``config`` (first-come selection, no disruptions).
 
     The fleet is :func:`fleetsim.fleet.sample_fleet` of the same seed; every dynamic draw
-    comes from the oracle's own stream. Raises ValueError for a configuration it does not
-    model (another selection policy, disruptions, pacing, or more than one round in flight).
+    comes from the oracle's own stream. Several workloads share one selection desk (module
+    docstring); their frames are led by a ``workload`` column. Raises ValueError for a configuration it does not
+    model (in any workload: another selection policy, pacing, or more than one round in
+    flight; disruptions).
     """
-    if config.selection.policy != "first-come":
-        raise ValueError(f"the oracle models first-come selection only, not {config.selection.policy!r}")
     if config.disruptions:
         raise ValueError("the oracle does not model disruptions")
-    if getattr(config.rounds, "pacing", None) is not None:
-        raise ValueError("the oracle does not model pacing")
-    if getattr(config.rounds, "in_flight", 1) != 1:
-        raise ValueError("the oracle models one round at a time, not rounds.in_flight > 1")
+    for job in config.jobs:
+        where = "" if len(config.jobs) == 1 else f" (workload {job.name!r})"
+        own = job.config
+        if own.selection.policy != "first-come":
+            raise ValueError(f"the oracle models first-come selection only, not {own.selection.policy!r}{where}")
+        if getattr(own.rounds, "pacing", None) is not None:
+            raise ValueError(f"the oracle does not model pacing{where}")
+        if getattr(own.rounds, "in_flight", 1) != 1:
+            raise ValueError(f"the oracle models one round at a time, not rounds.in_flight > 1{where}")
     return _Oracle(config, seed).run()

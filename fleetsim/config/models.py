@@ -186,7 +186,7 @@ class Selection(_Strict):
 class Horizon(_Strict):
     """The simulated span. ``warmup`` runs the server before ``start`` so that the fleet's
     rest periods and participation history reach their running state; nothing of the warm-up
-    is reported. Unset: as long as the rest period, at most two days."""
+    is reported. Unset: as long as the longest rest period of the workloads, at most two days."""
 
     start: Instant
     duration: PositiveDuration

@@ -166,6 +166,7 @@ def _one_workload(record: RunRecord) -> Metrics:
         "devices": fleet.size,
         "horizon_start": format_instant(start),
         "simulated_hours": hours,
+        "replay": record.replay,
         "rounds": rounds_part(rounds, hours, round_extra),
         "participations": participations_part(labelled, used, task_durations(parts)[0]),
         "waste": waste_part(waste_sums(labelled), waste_sums(wasted), by_cause, by_type),

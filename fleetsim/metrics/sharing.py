@@ -22,7 +22,7 @@ if TYPE_CHECKING:
 __all__ = ["HEADER_KEYS", "competition_table", "sharing_part"]
 
 HEADER_KEYS = ("scenario", "fleet_file", "seed", "config_hash", "policy", "devices", "horizon_start",
-               "simulated_hours")
+               "simulated_hours", "replay")
 """Keys of summary.json that describe the run rather than one workload (kept once at the top)."""
 
 GROUPINGS = ("device_type", "region")

@@ -1,0 +1,202 @@
+"""Replay: the logged devices' own signals drive the run instead of the fleet model's chains.
+
+A :class:`Replay` holds, for each logged device, its type and region names and, per signal,
+the intervals the signal was on, in run time (seconds from the horizon start): the interval
+logs of docs/telemetry.md, clipped to the times the device was logged (outside them every
+signal is off: the device cannot check in). :class:`ReplaySignals` answers the engine's
+questions of the chains (:class:`fleetsim.chains.SignalState`) from them: a look at a
+signal is its logged state, a task's path is the logged changes, and a look changes nothing.
+There is no settled state: the logged signals already hold whatever correlation the
+devices had. Batteries, traits, the workload and the round protocol come from the fleet file.
+
+Lookups go through one sorted array of keys per table, ``line * G + t`` with ``line`` =
+device x 3 + signal and G longer than the logs' span, so a look at a million devices is one
+binary search (float64 keys hold the times to about a millisecond at that size).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .chains import Paths, SignalState
+from .config import SIGNALS
+from .signals import CHAINS, SETTLED, SignalTables
+
+__all__ = ["Replay", "ReplaySignals", "replay_from_frame"]
+
+_S = len(SIGNALS)
+
+
+@dataclass(frozen=True)
+class Replay:
+    """Logged devices and their signals' on-intervals (run time, s).
+
+    ``device_id``, ``device_type`` and ``region`` name each device; ``line`` (device x 3 +
+    signal index), ``start`` and ``end`` list the on-intervals, sorted by line and start,
+    touching or overlapping intervals of a line merged; ``first_s`` and ``last_s`` are the
+    logs' span (the earliest and latest logged instant of any device)."""
+
+    device_id: np.ndarray
+    device_type: np.ndarray
+    region: np.ndarray
+    line: np.ndarray
+    start: np.ndarray
+    end: np.ndarray
+    first_s: float
+    last_s: float
+
+    @property
+    def size(self) -> int:
+        return int(self.device_id.size)
+
+    @classmethod
+    def from_intervals(cls, devices: dict[str, np.ndarray], signal: np.ndarray, device: np.ndarray,
+                       start: np.ndarray, end: np.ndarray, observed: tuple[np.ndarray, np.ndarray, np.ndarray]
+                       ) -> Replay:
+        """Build from per-device names (``devices``: ``device_id``, ``device_type``,
+        ``region``), the on-intervals (``signal``: index into SIGNALS; ``device``: index
+        into the devices) and the observed intervals (device index, start, end). Each
+        on-interval is cut to the device's observed intervals."""
+        obs_device, obs_start, obs_end = (np.asarray(a) for a in observed)
+        device = np.asarray(device, dtype=np.int64)
+        signal = np.asarray(signal, dtype=np.int64)
+        start, end = np.asarray(start, dtype=float), np.asarray(end, dtype=float)
+        keep, lo, hi = _within_observed(device, start, end, obs_device, obs_start, obs_end)
+        line = device[keep] * _S + signal[keep]
+        line, lo, hi = _merge(line, lo, hi)
+        span = (float(obs_start.min()), float(obs_end.max())) if obs_start.size else (0.0, 0.0)
+        return cls(np.asarray(devices["device_id"]), np.asarray(devices["device_type"]),
+                   np.asarray(devices["region"]), line, lo, hi, *span)
+
+
+def replay_from_frame(intervals: pd.DataFrame, origin_epoch_s: float) -> Replay:
+    """A :class:`Replay` from an interval-log frame (docs/telemetry.md: ``device_id``,
+    ``device_type``, ``region``, ``signal`` (a signal name or ``observed``), ``start_s``,
+    ``end_s`` in Unix seconds), in run time from ``origin_epoch_s`` (the horizon start).
+    Devices are in order of their ids."""
+    ids, device = np.unique(intervals["device_id"].astype(str).to_numpy(), return_inverse=True)
+    first = np.unique(device, return_index=True)[1]
+    names = {
+        "device_id": ids,
+        "device_type": intervals["device_type"].astype(str).to_numpy()[first],
+        "region": intervals["region"].astype(str).to_numpy()[first],
+    }
+    signal = intervals["signal"].astype(str).to_numpy()
+    start = intervals["start_s"].to_numpy(dtype=float) - origin_epoch_s
+    end = intervals["end_s"].to_numpy(dtype=float) - origin_epoch_s
+    seen = signal == "observed"
+    code = np.full(signal.size, -1, dtype=np.int64)
+    for s, name in enumerate(SIGNALS):
+        code[signal == name] = s
+    on = code >= 0
+    return Replay.from_intervals(names, code[on], device[on], start[on], end[on],
+                                 (device[seen], start[seen], end[seen]))
+
+
+def _within_observed(device: np.ndarray, start: np.ndarray, end: np.ndarray, obs_device: np.ndarray,
+                     obs_start: np.ndarray, obs_end: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Which intervals lie (partly) in an observed interval of their device, and their parts
+    there: each is cut to the observed interval it starts in (the format puts every signal
+    row inside one); the others are dropped. Returns the mask and the cut starts and ends."""
+    if not obs_device.size or not device.size:
+        return np.zeros(device.size, dtype=bool), start[:0], end[:0]
+    lo_t = min(float(obs_start.min()), float(start.min()))
+    gap = max(float(obs_end.max()), float(end.max())) - lo_t + 2.0
+    obs_key = obs_device.astype(np.int64) * gap + (obs_start - lo_t)
+    order = np.argsort(obs_key, kind="stable")
+    obs_key, o_dev, o_start, o_end = obs_key[order], obs_device[order], obs_start[order], obs_end[order]
+    k = np.searchsorted(obs_key, device.astype(np.int64) * gap + (start - lo_t), side="right") - 1
+    safe = np.maximum(k, 0)
+    lo = np.maximum(start, o_start[safe])
+    hi = np.minimum(end, o_end[safe])
+    keep = (k >= 0) & (o_dev[safe] == device) & (hi > lo)
+    return keep, lo[keep], hi[keep]
+
+
+def _merge(line: np.ndarray, start: np.ndarray, end: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Sort by (line, start) and merge intervals of a line that touch or overlap."""
+    order = np.lexsort((start, line))
+    line, start, end = line[order], start[order], end[order]
+    if line.size < 2:
+        return line, start, end
+    furthest = pd.Series(end).groupby(line).cummax().to_numpy()  # the furthest end so far, per line
+    new = np.ones(line.size, dtype=bool)
+    new[1:] = (line[1:] != line[:-1]) | (start[1:] > furthest[:-1])
+    group = np.cumsum(new) - 1
+    merged_end = np.full(int(group[-1]) + 1, -np.inf)
+    np.maximum.at(merged_end, group, end)
+    return line[new], start[new], merged_end
+
+
+class ReplaySignals(SignalState):
+    """The chains as the logs show them (see the module doc): looks and paths from the logs,
+    nothing drawn, nothing recorded. ``tables`` must hold no settled state."""
+
+    def __init__(self, tables: SignalTables, group: np.ndarray, replay: Replay):
+        super().__init__(tables, group)
+        assert not tables.has_settled, "replayed signals have no settled state"
+        self.replay = replay
+        lo = min(replay.first_s, float(replay.start.min(initial=0.0))) - 1.0
+        self._origin = lo
+        self._gap = max(replay.last_s, float(replay.end.max(initial=0.0))) - lo + 2.0
+        self._start_key = replay.line * self._gap + (replay.start - lo)
+        self._end_key = replay.line * self._gap + (replay.end - lo)
+        bounds = np.stack([self._start_key, self._end_key], axis=1).reshape(-1)
+        self._bound_key = bounds
+        self._bound_time = np.stack([replay.start, replay.end], axis=1).reshape(-1)
+
+    def _key(self, devices: np.ndarray, signal: int, t: np.ndarray) -> np.ndarray:
+        rel = np.clip(np.asarray(t, dtype=float) - self._origin, 0.0, self._gap - 1.0)
+        return (devices.astype(np.int64) * _S + signal) * self._gap + rel
+
+    def _on(self, devices: np.ndarray, chain: int, t: np.ndarray) -> np.ndarray:
+        if chain == SETTLED or not self._start_key.size:
+            return np.zeros(devices.size, dtype=bool)
+        key = self._key(devices, chain - 1, np.broadcast_to(t, devices.shape))
+        k = np.searchsorted(self._start_key, key, side="right") - 1
+        safe = np.maximum(k, 0)
+        line = devices.astype(np.int64) * _S + (chain - 1)
+        return (k >= 0) & (self.replay.line[safe] == line) & (self._end_key[safe] > key)
+
+    def _probability(self, devices: np.ndarray, chain: int, t: np.ndarray) -> np.ndarray:
+        return self._on(devices, chain, t).astype(float)
+
+    def observe(self, devices: np.ndarray, chain: int, t: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+        return self._on(devices, chain, t)
+
+    def _probabilities(self, devices: np.ndarray, chains: list[int], t: np.ndarray) -> np.ndarray:
+        return np.stack([self._on(devices, c, t) for c in chains]).astype(float) if chains else (
+            np.zeros((0, devices.size)))
+
+    def observe_chains(self, devices: np.ndarray, chains: list[int], t: np.ndarray,
+                       rng: np.random.Generator) -> np.ndarray:
+        return self._probabilities(devices, chains, t) > 0.5
+
+    def record(self, devices: np.ndarray, chain: int, t: np.ndarray, on: np.ndarray) -> None:
+        """The logs are what they are: nothing a task did changes them."""
+
+    def paths(self, devices: np.ndarray, t0: np.ndarray, t_stop: np.ndarray, rng: np.random.Generator,
+              own: list[int] | None = None) -> Paths:
+        """The logged states at ``t0`` and every logged change up to ``t_stop``."""
+        n = devices.size
+        t0 = np.asarray(t0, dtype=float)
+        t_stop = np.asarray(t_stop, dtype=float)
+        followed = np.zeros(len(CHAINS), dtype=bool)
+        followed[own if own is not None else list(range(1, len(CHAINS)))] = True
+        state0 = np.zeros((len(CHAINS), n), dtype=bool)
+        lows, counts = {}, {}
+        for c in np.flatnonzero(followed):
+            state0[c] = self._on(devices, int(c), t0)
+            lo = np.searchsorted(self._bound_key, self._key(devices, int(c) - 1, t0), side="right")
+            hi = np.searchsorted(self._bound_key, self._key(devices, int(c) - 1, np.maximum(t_stop, t0)), side="right")
+            lows[c], counts[c] = lo, hi - lo
+        most = max((int(v.max(initial=0)) for v in counts.values()), default=0)
+        flips = np.full((len(CHAINS), n, most), np.inf)
+        for c, lo in lows.items():
+            for j in range(most):
+                has = counts[c] > j
+                flips[c, has, j] = self._bound_time[lo[has] + j]
+        return Paths(t0=t0, state0=state0, flips=flips, t_stop=t_stop, followed=followed)
