@@ -118,13 +118,8 @@ def simulate(
     env.process(desk.run())
     env.run()
 
-    frames = []
-    for log, rows in zip(logs, census_rows, strict=True):
-        rounds_frame, parts_frame = _after_warmup(log.rounds(), log.participations(fleet.type_names, fleet.region_names))
-        frames.append((parts_frame, rounds_frame, _census_frame(fleet, census_times, rows)))
     names = [job.name for job in jobs]
-    parts_frame, rounds_frame, census_frame = (
-        frames[0] if len(jobs) == 1 else (_by_workload([f[i] for f in frames], names) for i in range(3)))
+    parts_frame, rounds_frame, census_frame = _frames(fleet, logs, census_times, census_rows, names)
     record = RunRecord(
         config=config,
         seed=seed,
@@ -173,6 +168,19 @@ def _replay_pairs(config: Config, replay: Replay, horizon_s: float) -> np.ndarra
     lookup_r = {name: i for i, name in enumerate(regions)}
     return np.array([lookup_t[t] * len(regions) + lookup_r[r] for t, r in zip(replay.device_type, replay.region,
                                                                               strict=True)], dtype=np.int64)
+
+
+def _frames(fleet: Fleet, logs: list[EventLog], census_times: list[float],
+            census_rows: list[list[tuple[np.ndarray, ...]]], names: list[str]) -> tuple[pd.DataFrame, ...]:
+    """Participations, rounds and census of the run (after the warm-up); of several workloads,
+    each workload's rows led by a ``workload`` column."""
+    frames = []
+    for log, rows in zip(logs, census_rows, strict=True):
+        rounds_frame, parts_frame = _after_warmup(log.rounds(), log.participations(fleet.type_names, fleet.region_names))
+        frames.append((parts_frame, rounds_frame, _census_frame(fleet, census_times, rows)))
+    if len(names) == 1:
+        return frames[0]
+    return tuple(_by_workload([f[i] for f in frames], names) for i in range(3))
 
 
 def _policy_name(policy: object) -> str:
