@@ -16,6 +16,11 @@ that eligible devices are plentiful and a round's report phase, not its selectio
 takes time), ``in_flight`` 1 against 2; the invariants are those of tests/test_invariants.py
 (no device in two rounds at once, rest after each) and are checked here too.
 
+Several workloads: the example alone against fleets/inkwren-two-models.yaml (a second, smaller
+model on the same devices, priority to the first): each workload's committed rounds per hour
+and rounds ended at the selection timeout, its part of the horizon at the server, and the
+cross-workload invariants (a device rests after any round before any workload takes it).
+
 Results are recorded in benchmarks/README.md.
 """
 
@@ -104,6 +109,30 @@ def pipelining_table(devices: int, days: float, seeds: list[int]) -> None:
               f"{np.mean([r['selection_timeouts'] for r in rows]):11.1f} {'hold' if ok else 'BROKEN':>10}")
 
 
+def workloads_table(devices: int, days: float, seeds: list[int]) -> None:
+    """The example alone against fleets/inkwren-two-models.yaml (a second model on the same
+    fleet, priority to ranking): what the second workload costs the first."""
+    base = [f"fleet.devices={devices}", f"horizon.duration={days}d"]
+    print(f"\none model against two on the same fleet, {devices:,} devices x {days:g} d, seeds {seeds}")
+    print(f"{'fleet file':22} {'workload':11} {'rounds/h':>9} {'sel-timeout':>11} {'desk share':>10} "
+          f"{'wall s':>7} {'invariants':>10}")
+    for label, path in (("inkwren.yaml", fleetsim.example_path()),
+                        ("inkwren-two-models.yaml", ROOT / "fleets" / "inkwren-two-models.yaml")):
+        config = fleetsim.load_config(path, base)
+        runs = []
+        for seed in seeds:
+            start = time.perf_counter()
+            runs.append((fleetsim.simulate(config, seed=seed), time.perf_counter() - start))
+        for job in config.jobs:
+            figures = [run.workloads[job.name].summary["rounds"] for run, _ in runs]
+            desk = [run.summary.get("sharing", {}).get("desk_share", {}).get(job.name) for run, _ in runs]
+            ok = all(overlap_ok(run.workloads[job.name]) for run, _ in runs)
+            shown = "" if desk[0] is None else f"{np.mean(desk):.3f}"
+            print(f"{label:22} {job.name:11} {np.mean([f['committed_per_hour'] for f in figures]):9.2f} "
+                  f"{np.mean([f['ended_by']['selection_timeout'] for f in figures]):11.1f} {shown:>10} "
+                  f"{np.mean([wall for _, wall in runs]):7.1f} {'hold' if ok else 'BROKEN':>10}")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--quick", action="store_true")
@@ -113,10 +142,12 @@ def main() -> None:
     if args.quick:
         pacing_table(5_000, 0.5, [0])
         pipelining_table(5_000, 0.25, [0])
+        workloads_table(5_000, 0.25, [0])
         return
     pacing_table(50_000, 7, [0, 1, 2])
     pacing_table(1_000_000, 1, [0, 1, 2])
     pipelining_table(200_000, 1, [0, 1, 2])
+    workloads_table(50_000, 7, [0, 1, 2])
 
 
 if __name__ == "__main__":

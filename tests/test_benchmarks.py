@@ -40,3 +40,14 @@ def test_the_fleet_model_benchmark_times_a_whole_run_of_a_checkout(tmp_path):
     row = module.run_command(ROOT, 2000, 0.25, tmp_path / "run")
     assert row["wall_s"] > 0 and row["peak_mb"] > 50 and row["attempted"] >= row["committed"] >= 0
     assert (tmp_path / "run" / "summary.json").is_file()
+
+
+def test_the_round_protocol_benchmark_runs_its_quick_tables():
+    done = subprocess.run([sys.executable, str(ROOT / "benchmarks" / "round_protocol.py"), "--quick"],
+                          cwd=ROOT, capture_output=True, text=True, timeout=600, check=False)
+    assert done.returncode == 0, done.stderr
+    out = done.stdout
+    assert "pacing on against off" in out and "pipelining" in out and "one model against two" in out
+    # Every table row checked the invariants (no device in two rounds at once, rest after each).
+    assert out.count("hold") >= 5 and "BROKEN" not in out
+    assert "highlights" in out and "ranking" in out
