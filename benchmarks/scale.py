@@ -38,13 +38,15 @@ QUICK = {"targets": [(5_000, 0.5, None, None)], "devices": [(2_000, 0.5, None, N
          "days": [(2_000, 0.25, None, None), (2_000, 0.5, None, None)]}
 
 
-def run_case(devices: int, days: float, seed: int = 1, oracle: bool = False) -> dict:
+def run_case(devices: int, days: float, seed: int = 1, oracle: bool = False, unpaced: bool = False) -> dict:
     """Simulate the example fleet at this size in this process; return the measurements."""
     import resource
 
     import fleetsim
 
-    config = fleetsim.load_config(fleetsim.example_path(), [f"fleet.devices={devices}", f"horizon.duration={days}d"])
+    # The oracle models no pacing: for the comparison both run the example unpaced.
+    config = fleetsim.load_config(fleetsim.example_path(), [f"fleet.devices={devices}", f"horizon.duration={days}d",
+                                                            *(["rounds.pacing=null"] if unpaced else [])])
     start = time.perf_counter()
     if oracle:
         sys.path.insert(0, str(ROOT))
@@ -79,8 +81,13 @@ def run_case(devices: int, days: float, seed: int = 1, oracle: bool = False) -> 
     return row
 
 
-def run_in_subprocess(devices: int, days: float, oracle: bool = False) -> dict:
-    cmd = [sys.executable, __file__, "--case", str(devices), str(days)] + (["--oracle"] if oracle else [])
+def _g(value: float | None) -> str:
+    return "n/a" if value is None else f"{value:.4g}"
+
+
+def run_in_subprocess(devices: int, days: float, oracle: bool = False, unpaced: bool = False) -> dict:
+    cmd = [sys.executable, __file__, "--case", str(devices), str(days)] + (["--oracle"] if oracle else []) + (
+        ["--unpaced"] if unpaced else [])
     done = subprocess.run(cmd, cwd=ROOT, capture_output=True, text=True, check=False)
     if done.returncode != 0:
         raise SystemExit(f"case {devices} devices x {days} days failed:\n{done.stderr}")
@@ -115,12 +122,13 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--case", nargs=2, metavar=("DEVICES", "DAYS"))
     parser.add_argument("--oracle", action="store_true")
+    parser.add_argument("--unpaced", action="store_true", help="the example with rounds.pacing=null")
     parser.add_argument("--quick", action="store_true")
     parser.add_argument("--only", choices=[*GROUPS, "oracle"], action="append")
     parser.add_argument("--oracle-devices", type=int, default=100_000)
     args = parser.parse_args()
     if args.case:
-        print(json.dumps(run_case(int(args.case[0]), float(args.case[1]), oracle=args.oracle)))
+        print(json.dumps(run_case(int(args.case[0]), float(args.case[1]), oracle=args.oracle, unpaced=args.unpaced)))
         return
 
     groups = QUICK if args.quick else GROUPS
@@ -150,15 +158,15 @@ def main() -> None:
             report["slopes"]["wall_vs_days"] = slope(rows, "days")
     if "oracle" in wanted:
         devices = 2_000 if args.quick else args.oracle_devices
-        engine = run_in_subprocess(devices, 1 if not args.quick else 0.25)
-        oracle = run_in_subprocess(devices, 1 if not args.quick else 0.25, oracle=True)
+        engine = run_in_subprocess(devices, 1 if not args.quick else 0.25, unpaced=True)
+        oracle = run_in_subprocess(devices, 1 if not args.quick else 0.25, oracle=True, unpaced=True)
         engine["group"] = oracle["group"] = "oracle"
         engine["oracle_ratio"] = oracle["wall_s"] / engine["wall_s"]
         table.extend([engine, oracle])
         print(f"oracle   {devices:>11,} devices: engine {engine['wall_s']:.2f} s, oracle {oracle['wall_s']:.1f} s, "
               f"ratio {engine['oracle_ratio']:.0f}x", flush=True)
         for key in ("committed_per_hour", "waste_compute_fraction"):
-            print(f"  {key}: engine {engine[key]:.4g}, oracle {oracle[key]:.4g}")
+            print(f"  {key}: engine {_g(engine[key])}, oracle {_g(oracle[key])}")
         for name, share in engine["report_share"].items():
             print(f"  report share {name}: engine {share:.3f}, oracle {oracle['report_share'].get(name, 0.0):.3f}")
 
