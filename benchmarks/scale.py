@@ -168,7 +168,7 @@ def main() -> None:
         for key in ("committed_per_hour", "waste_compute_fraction"):
             print(f"  {key}: engine {_g(engine[key])}, oracle {_g(oracle[key])}")
         for name, share in engine["report_share"].items():
-            print(f"  report share {name}: engine {share:.3f}, oracle {oracle['report_share'].get(name, 0.0):.3f}")
+            print(f"  report share {name}: engine {_g(share)}, oracle {_g(oracle['report_share'].get(name, 0.0))}")
 
     print()
     print(f"machine: {report['machine']}")
