@@ -33,7 +33,7 @@ from .result import Result
 from .runtime import FleetRuntime
 from .server import RoundServer
 from .signals import build_signal_tables
-from .units import format_instant
+from .units import format_duration, format_instant
 
 __all__ = ["Result", "simulate", "STREAMS"]
 
@@ -155,15 +155,21 @@ def _replay_pairs(config: Config, replay: Replay, horizon_s: float) -> np.ndarra
         if unknown:
             raise FleetsimError(f"replay: the logs name {', '.join(map(repr, unknown[:5]))}, not in the fleet "
                                 f"file's {key} ({', '.join(known)}); add them or fit the file from these logs")
-    if replay.first_s > 0.0 or replay.last_s < horizon_s:
+    # Within one check-in period of the logs' ends: the first and last check-ins of snapshot
+    # logs fall anywhere in a period (the device is unobserved, its signals off, until then).
+    slack = float(config.rounds.checkin_every)
+    if replay.first_s > slack or replay.last_s < horizon_s - slack:
         start = config.horizon.start.timestamp()
+
         def at(s: float) -> str:
             return format_instant(datetime.fromtimestamp(start + s, tz=timezone.utc))
+
+        early, late = max(replay.first_s, 0.0), max(horizon_s - replay.last_s, 0.0)
         raise FleetsimError(
             f"replay: the horizon {at(0.0)} to {at(horizon_s)} is not within the logs' span {at(replay.first_s)} "
-            f"to {at(replay.last_s)} (it starts {max(replay.first_s, 0.0) / 3600:.1f} h before the logs do "
-            f"and ends {max(horizon_s - replay.last_s, 0.0) / 3600:.1f} h after); set horizon.start and "
-            "horizon.duration within the logs")
+            f"to {at(replay.last_s)} (it starts {format_duration(early)} before the logs do and ends "
+            f"{format_duration(late)} after; one check-in period, {format_duration(slack)}, is allowed); set "
+            "horizon.start and horizon.duration within the logs")
     lookup_t = {name: i for i, name in enumerate(types)}
     lookup_r = {name: i for i, name in enumerate(regions)}
     return np.array([lookup_t[t] * len(regions) + lookup_r[r] for t, r in zip(replay.device_type, replay.region,

@@ -49,6 +49,8 @@ COMMAND_DOCS = {
     "report": "report.md",
     "sweep": "studies.md",
     "compare": "studies.md",
+    "telemetry": "telemetry.md",
+    "fit": "fit.md",
 }
 """The doc that owns each command and its options (a new command must be given one here)."""
 

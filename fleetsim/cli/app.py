@@ -13,7 +13,7 @@ from typing import Any
 import typer
 from typer.core import TyperGroup
 
-from . import report, run, study
+from . import fit, report, run, study, telemetry
 from .console import OptionValueError, one_line
 
 try:  # typer vendors its own copy of click from 0.22 on
@@ -95,6 +95,8 @@ app.command("policies")(run.policies)
 app.command("report")(report.report)
 app.command("sweep")(study.sweep)
 app.command("compare")(study.compare)
+app.command("telemetry")(telemetry.telemetry)
+app.command("fit")(fit.fit)
 
 
 def main() -> None:

@@ -29,6 +29,11 @@ def run(
     devices: int | None = typer.Option(None, "--devices", help="Fleet size (overrides the file)."),
     overrides: list[str] = SetOpt,
     report: bool = typer.Option(False, "--report", help="Also write report.html and report.md."),
+    replay: list[Path] = typer.Option(
+        [], "--replay",
+        help="Telemetry files or folders (interval logs, or check-in snapshots filled by a bridge; "
+             "docs/telemetry.md) whose logged devices and signals drive the run instead of the fleet model.",
+    ),
     force: bool = typer.Option(
         False, "--force", help="Replace an earlier fleetsim output at --out (never a folder fleetsim did not write)."
     ),
@@ -42,9 +47,12 @@ def run(
         config = read_config(file, overrides, devices, days)
         source = file if file is not None else example_path()
         label = f"--out {out}"
-        check_target(out, "run", force, [source], label)  # refuse before simulating, not after
+        check_target(out, "run", force, [source, *replay], label)  # refuse before simulating, not after
+        logs = None
+        if replay:
+            config, logs = _replay_logs(file, overrides, days, replay, seed, config)
         with progress_bar(config.horizon.duration, "simulating") as tick:
-            result = simulate(config, seed=seed, on_progress=tick)
+            result = simulate(config, seed=seed, on_progress=tick, replay=logs)
         result.source = str(source.resolve())  # absolute: the summary names the file wherever it is read
         write_run(result, out, force=force, inputs=[source], label=label,
                   notice=lambda line: typer.echo(line, err=True))
@@ -58,6 +66,25 @@ def run(
     several = ", workloads/ (one run folder per workload)" if len(result.workloads) > 1 else ""
     typer.echo(f"wrote {out}/summary.json, events.parquet, tables/" + several
                + (", report.html, report.md" if report else ""))
+
+
+def _replay_logs(file: Path | None, overrides: list[str], days: float | None, paths: list[Path], seed: int,
+                 config):
+    """The fleet file read again for the logged devices, and their :class:`fleetsim.replay.Replay`:
+    from interval logs, or from snapshots filled by the bridge (:mod:`fleetsim.bridge`)."""
+    from ..bridge import bridge_intervals
+    from ..replay import replay_from_frame
+    from ..telemetry.read import read_telemetry
+
+    telemetry = read_telemetry(paths)
+    frame = telemetry.intervals
+    if frame is None:
+        if telemetry.snapshots is None:
+            raise FleetsimError(f"--replay {paths[0]}: holds no interval logs or snapshots (docs/telemetry.md)")
+        frame = bridge_intervals(telemetry.snapshots, config, seed)
+    count = frame["device_id"].nunique()
+    config = read_config(file, [*overrides, f"fleet.devices={count}"], None, days)
+    return config, replay_from_frame(frame, config.horizon.start.timestamp())
 
 
 def check(

@@ -1,7 +1,7 @@
 """Output folders: the marker, the checks on a target, the atomic swap and leftovers.
 
-Nothing fleetsim did not write is ever replaced: every folder it writes (run, sweep and
-comparison folders) carries the marker file :data:`MARKER`; a target that exists, is not
+Nothing fleetsim did not write is ever replaced: every folder it writes (run, sweep,
+comparison and telemetry folders) carries the marker file :data:`MARKER`; a target that exists, is not
 empty and has no marker is refused, and replacing an earlier output needs ``force``
 (``--force``). :func:`check_target` holds these rules. A folder is filled under a fresh
 sibling name (``.NAME.partial-*``) and swapped in only once complete
@@ -37,14 +37,16 @@ __all__ = [
 MARKER = ".fleetsim-output"
 """Name of the marker file in every folder fleetsim writes: JSON with kind, version and time."""
 
-KINDS = ("run", "sweep", "compare", "study")
-"""Kinds of output folder; ``study`` is a study folder not yet claimed by a sweep or comparison."""
+KINDS = ("run", "sweep", "compare", "study", "telemetry")
+"""Kinds of output folder; ``study`` is a study folder not yet claimed by a sweep or comparison;
+``telemetry`` a folder of synthetic telemetry (``fleetsim telemetry``)."""
 
 # The marker kinds a folder may already carry for a write of each kind to go ahead without
 # force: a study resumes in its own folder, a run never replaces anything unasked.
 _RESUMES = {"run": set(), "sweep": {"sweep", "study"}, "compare": {"compare", "study"},
-            "study": {"sweep", "compare", "study"}}
-_KIND_WORDS = {"run": "run", "sweep": "sweep", "compare": "comparison", "study": "study"}
+            "study": {"sweep", "compare", "study"}, "telemetry": set()}
+_KIND_WORDS = {"run": "run", "sweep": "sweep", "compare": "comparison", "study": "study",
+               "telemetry": "telemetry folder"}
 _HOLDER = "old"  # marker kind of the folder an output being replaced is moved into
 
 _STARTED = time.time()
@@ -152,12 +154,16 @@ _STUDY_FILES = {"front.csv", "study.json", "study.md", "comparison.json", "compa
                                   for ext in ("parquet", "csv"))}
 _SUBFOLDERS = {"run": {"tables": re.compile(r"[^/]+\.csv")},
                "study": {"cells": re.compile(r"[0-9a-f]+\.json"), "heatmaps": re.compile(r"[^/]+\.(png|svg)")}}
+_TELEMETRY_FILES = {"telemetry.json", *(f"{stem}.{ext}" for stem in ("intervals", "snapshots", "traits", "tasks")
+                                         for ext in ("csv", "parquet"))}
 _WORKLOADS = "workloads"  # a run of several workloads: one run folder per workload under it
 _TEMPORARY = re.compile(r"\.partial-.*|\..+\.partial")  # atomic_text, atomic_save and the report's temporary files
 
 
 def _foreign(where: Path, kind: str) -> list[str]:
     """Entries of the fleetsim folder ``where`` (of ``kind``) that fleetsim would not have written."""
+    if kind == "telemetry":
+        return _foreign_in(where, _TELEMETRY_FILES, {}, nested=False)
     group = "run" if kind == "run" else "study"
     files = _RUN_FILES if group == "run" else _STUDY_FILES
     return _foreign_in(where, files, _SUBFOLDERS[group], nested=group == "run")
