@@ -9,9 +9,9 @@ signal is its logged state, a task's path is the logged changes, and a look chan
 There is no settled state: the logged signals already hold whatever correlation the
 devices had. Batteries, traits, the workload and the round protocol come from the fleet file.
 
-Lookups go through one sorted array of keys per table, ``line * G + t`` with ``line`` =
-device x 3 + signal and G longer than the logs' span, so a look at a million devices is one
-binary search (float64 keys hold the times to about a millisecond at that size).
+The intervals are sorted by line (device x 3 + signal) and start; a look is a binary search
+within the device's own line, a few steps for a line of a few dozen intervals, vectorised
+over every device looked at.
 """
 
 from __future__ import annotations
@@ -77,20 +77,23 @@ def replay_from_frame(intervals: pd.DataFrame, origin_epoch_s: float) -> Replay:
     ``device_type``, ``region``, ``signal`` (a signal name or ``observed``), ``start_s``,
     ``end_s`` in Unix seconds), in run time from ``origin_epoch_s`` (the horizon start).
     Devices are in order of their ids."""
-    ids, device = np.unique(intervals["device_id"].astype(str).to_numpy(), return_inverse=True)
-    first = np.unique(device, return_index=True)[1]
+    codes, uniques = pd.factorize(intervals["device_id"], sort=True)  # hashed, then the names sorted
+    ids = np.asarray(uniques).astype(str)
+    device = codes.astype(np.int64)
+    first = np.full(ids.size, -1, dtype=np.int64)
+    first[device[::-1]] = np.arange(device.size - 1, -1, -1)  # each device's first row
     names = {
         "device_id": ids,
-        "device_type": intervals["device_type"].astype(str).to_numpy()[first],
-        "region": intervals["region"].astype(str).to_numpy()[first],
+        "device_type": intervals["device_type"].iloc[first].astype(str).to_numpy(),
+        "region": intervals["region"].iloc[first].astype(str).to_numpy(),
     }
-    signal = intervals["signal"].astype(str).to_numpy()
+    kinds, kind_names = pd.factorize(intervals["signal"])  # a handful of names: map each once
+    lookup = np.array([SIGNALS.index(k) if k in SIGNALS else (-2 if k == "observed" else -1)
+                       for k in map(str, kind_names)] + [-1], dtype=np.int64)
+    code = lookup[kinds]
     start = intervals["start_s"].to_numpy(dtype=float) - origin_epoch_s
     end = intervals["end_s"].to_numpy(dtype=float) - origin_epoch_s
-    seen = signal == "observed"
-    code = np.full(signal.size, -1, dtype=np.int64)
-    for s, name in enumerate(SIGNALS):
-        code[signal == name] = s
+    seen = code == -2
     on = code >= 0
     return Replay.from_intervals(names, code[on], device[on], start[on], end[on],
                                  (device[seen], start[seen], end[seen]))
@@ -118,17 +121,18 @@ def _within_observed(device: np.ndarray, start: np.ndarray, end: np.ndarray, obs
 
 def _merge(line: np.ndarray, start: np.ndarray, end: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Sort by (line, start) and merge intervals of a line that touch or overlap."""
-    order = np.lexsort((start, line))
-    line, start, end = line[order], start[order], end[order]
     if line.size < 2:
         return line, start, end
+    # One integer key (line, start in ms from the earliest): sorted already when the logs are
+    # in the order the reader gives, else one stable sort instead of a two-key one.
+    key = line * (2**31) + np.floor((start - start.min()) * 1000.0).astype(np.int64)
+    if np.any(key[1:] < key[:-1]) or np.ptp(start) * 1000.0 >= 2**31:
+        order = np.argsort(key, kind="stable") if np.ptp(start) * 1000.0 < 2**31 else np.lexsort((start, line))
+        line, start, end = line[order], start[order], end[order]
     furthest = pd.Series(end).groupby(line).cummax().to_numpy()  # the furthest end so far, per line
     new = np.ones(line.size, dtype=bool)
     new[1:] = (line[1:] != line[:-1]) | (start[1:] > furthest[:-1])
-    group = np.cumsum(new) - 1
-    merged_end = np.full(int(group[-1]) + 1, -np.inf)
-    np.maximum.at(merged_end, group, end)
-    return line[new], start[new], merged_end
+    return line[new], start[new], np.maximum.reduceat(end, np.flatnonzero(new))
 
 
 class ReplaySignals(SignalState):
@@ -139,27 +143,35 @@ class ReplaySignals(SignalState):
         super().__init__(tables, group)
         assert not tables.has_settled, "replayed signals have no settled state"
         self.replay = replay
-        lo = min(replay.first_s, float(replay.start.min(initial=0.0))) - 1.0
-        self._origin = lo
-        self._gap = max(replay.last_s, float(replay.end.max(initial=0.0))) - lo + 2.0
-        self._start_key = replay.line * self._gap + (replay.start - lo)
-        self._end_key = replay.line * self._gap + (replay.end - lo)
-        bounds = np.stack([self._start_key, self._end_key], axis=1).reshape(-1)
-        self._bound_key = bounds
+        lines = int(group.size) * _S
+        # Each line's intervals are a slice of the sorted arrays: offsets[line] to offsets[line + 1].
+        self._offsets = np.searchsorted(replay.line, np.arange(lines + 1), side="left")
         self._bound_time = np.stack([replay.start, replay.end], axis=1).reshape(-1)
 
-    def _key(self, devices: np.ndarray, signal: int, t: np.ndarray) -> np.ndarray:
-        rel = np.clip(np.asarray(t, dtype=float) - self._origin, 0.0, self._gap - 1.0)
-        return (devices.astype(np.int64) * _S + signal) * self._gap + rel
+    def _count(self, values: np.ndarray, scale: int, line: np.ndarray, t: np.ndarray) -> np.ndarray:
+        """For each query, the index (into ``values``, the line's entries from ``offsets[line] x
+        scale``) of its line's first entry after ``t``: a binary search within the line's own
+        slice, a few steps for lines of a few dozen intervals."""
+        lo = self._offsets[line] * scale
+        hi = self._offsets[line + 1] * scale
+        while True:
+            open_ = lo < hi
+            if not open_.any():
+                return lo
+            mid = (lo + hi) // 2
+            at = np.minimum(mid, values.size - 1)
+            right = open_ & (values[at] <= t)
+            lo = np.where(right, mid + 1, lo)
+            hi = np.where(open_ & ~right, mid, hi)
 
     def _on(self, devices: np.ndarray, chain: int, t: np.ndarray) -> np.ndarray:
-        if chain == SETTLED or not self._start_key.size:
+        if chain == SETTLED or not self.replay.start.size:
             return np.zeros(devices.size, dtype=bool)
-        key = self._key(devices, chain - 1, np.broadcast_to(t, devices.shape))
-        k = np.searchsorted(self._start_key, key, side="right") - 1
-        safe = np.maximum(k, 0)
+        t = np.broadcast_to(np.asarray(t, dtype=float), devices.shape)
         line = devices.astype(np.int64) * _S + (chain - 1)
-        return (k >= 0) & (self.replay.line[safe] == line) & (self._end_key[safe] > key)
+        k = self._count(self.replay.start, 1, line, t) - 1
+        safe = np.maximum(k, 0)
+        return (k >= self._offsets[line]) & (self.replay.end[safe] > t)
 
     def _probability(self, devices: np.ndarray, chain: int, t: np.ndarray) -> np.ndarray:
         return self._on(devices, chain, t).astype(float)
@@ -190,8 +202,9 @@ class ReplaySignals(SignalState):
         lows, counts = {}, {}
         for c in np.flatnonzero(followed):
             state0[c] = self._on(devices, int(c), t0)
-            lo = np.searchsorted(self._bound_key, self._key(devices, int(c) - 1, t0), side="right")
-            hi = np.searchsorted(self._bound_key, self._key(devices, int(c) - 1, np.maximum(t_stop, t0)), side="right")
+            line = devices.astype(np.int64) * _S + (int(c) - 1)
+            lo = self._count(self._bound_time, 2, line, t0) if self.replay.start.size else np.zeros(n, np.int64)
+            hi = self._count(self._bound_time, 2, line, np.maximum(t_stop, t0)) if self.replay.start.size else lo
             lows[c], counts[c] = lo, hi - lo
         most = max((int(v.max(initial=0)) for v in counts.values()), default=0)
         flips = np.full((len(CHAINS), n, most), np.inf)
