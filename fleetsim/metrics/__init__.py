@@ -29,12 +29,13 @@ from ..analysis import (
 from ..events import json_key
 from ..survival import task_durations, task_survival_tables
 from ..units import format_instant
-from .bias import BIAS_TABLES, bias_tables, participation_counts
+from .bias import BIAS_TABLES, PAIR_KEY, PAIR_TABLE, bias_tables, pair_bias_table, participation_counts
 from .load import hourly_table, rounds_open, server_load_part
+from .outcomes import outcomes_by_hour, outcomes_by_region, outcomes_part, participation_status
 from .rounds import closed_per_hour, round_frame
 from .secure import secure_part, unmasking_by_accepted
 from .sharing import GROUPINGS, HEADER_KEYS, competition_table, sharing_part
-from .summary import bias_map, clean, participations_part, rounds_part, waste_part
+from .summary import bias_map, clean, pair_map, participations_part, rounds_part, waste_part
 from .waste import device_cost, dropout_table, labelled_frame, waste_by_cause, waste_by_device_type, waste_sums
 
 if TYPE_CHECKING:
@@ -60,13 +61,14 @@ class Metrics:
 
 
 def _bias_part(bias: dict[str, pd.DataFrame], chi: pd.DataFrame, counts: pd.DataFrame,
-               reports_per_device: np.ndarray) -> dict[str, Any]:
+               reports_per_device: np.ndarray, pairs: pd.DataFrame) -> dict[str, Any]:
     """``bias`` of summary.json: shares by group, coverage, concentration and chi-square tests."""
     tests = chi.set_index("grouping")
     reports, devices = counts["reports"].to_numpy(), counts["devices"].to_numpy()
     n = reports_per_device.size
     return {
         **{f"by_{key}": bias_map(table, key) for key, table in bias.items()},
+        f"by_{PAIR_KEY}": pair_map(pairs),
         "coverage": float((reports_per_device > 0).mean()) if n else float("nan"),
         "gini": gini(reports_per_device),
         "chi_square_device_type": tests.at["device_type", "statistic"],
@@ -103,6 +105,24 @@ def compute_metrics(record: RunRecord) -> Metrics:
     return Metrics(summary=clean(summary), tables=tables, workloads=each)
 
 
+def _round_extra(config: Any, rounds: pd.DataFrame, closed: pd.DataFrame, hourly: pd.DataFrame,
+                 horizon_s: float) -> dict[str, Any]:
+    """The ``rounds`` figures besides counts and durations: the protocol that ran, how far
+    rounds overlapped, selections at the timeout, and how closely commits follow supply."""
+    selection = rounds.loc[rounds["status"] != "selection-timeout", "selection_s"].to_numpy(dtype=float)
+    open_peak, open_mean = rounds_open(rounds, horizon_s)
+    return {
+        "configure": config.rounds.configure,
+        "secure_aggregation": config.rounds.secure_aggregation is not None,
+        "pacing": config.rounds.pacing is not None,
+        "in_flight": config.rounds.in_flight,
+        "open_peak": open_peak,
+        "open_mean": open_mean,
+        "selection_at_timeout": share_at_limit(selection, float(config.rounds.selection_timeout)),
+        "eligible_correlation": correlation(closed["committed"], hourly["eligible"].to_numpy()),
+    }
+
+
 def _one_workload(record: RunRecord) -> Metrics:
     """Every table and the summary of a run of one workload."""
     config, fleet, parts, census = record.config, record.fleet, record.participations, record.census
@@ -121,6 +141,11 @@ def _one_workload(record: RunRecord) -> Metrics:
     used = parts["used"].to_numpy()
     reports_per_device = np.bincount(parts["device"].to_numpy()[used], minlength=fleet.size)
     bias = bias_tables(fleet, parts, census, reports_per_device)
+    pairs = pair_bias_table(fleet, parts, census, reports_per_device)
+    status = participation_status(parts, rounds)
+    zones = {name: region.timezone for name, region in config.fleet.regions.items()}
+    by_region_outcomes = outcomes_by_region(labelled, status, region_names)
+    by_hour_outcomes = outcomes_by_hour(labelled, status, rounds, start, zones)
     counts = participation_counts(reports_per_device)
     chi = chi_square_table(bias)
 
@@ -133,6 +158,9 @@ def _one_workload(record: RunRecord) -> Metrics:
         "waste_by_cause": by_cause,
         "waste_by_device_type": by_type,
         **{BIAS_TABLES[key]: table for key, table in bias.items()},
+        PAIR_TABLE: pairs,
+        "outcomes_by_region": by_region_outcomes,
+        "outcomes_by_hour": by_hour_outcomes,
         "participation_counts": counts,
         "dropouts": dropout_table(labelled[labelled["outcome"] == "dropout"]),
         "device_cost": device_cost(labelled),
@@ -145,18 +173,7 @@ def _one_workload(record: RunRecord) -> Metrics:
         "task_survival_by_minute": survival_minutes,
         "unmasking_by_accepted": unmasking_by_accepted(rounds, secure),
     }
-    selection = rounds.loc[rounds["status"] != "selection-timeout", "selection_s"].to_numpy(dtype=float)
-    open_peak, open_mean = rounds_open(rounds, horizon_s)
-    round_extra = {
-        "configure": config.rounds.configure,
-        "secure_aggregation": secure is not None,
-        "pacing": config.rounds.pacing is not None,
-        "in_flight": config.rounds.in_flight,
-        "open_peak": open_peak,
-        "open_mean": open_mean,
-        "selection_at_timeout": share_at_limit(selection, float(config.rounds.selection_timeout)),
-        "eligible_correlation": correlation(closed["committed"], hourly["eligible"].to_numpy()),
-    }
+    round_extra = _round_extra(config, rounds, closed, hourly, horizon_s)
     summary = {
         "scenario": config.scenario,
         "fleet_file": record.source,
@@ -170,7 +187,8 @@ def _one_workload(record: RunRecord) -> Metrics:
         "rounds": rounds_part(rounds, hours, round_extra),
         "participations": participations_part(labelled, used, task_durations(parts)[0]),
         "waste": waste_part(waste_sums(labelled), waste_sums(wasted), by_cause, by_type),
-        "bias": _bias_part(bias, chi, counts, reports_per_device),
+        "outcomes": outcomes_part(by_region_outcomes, by_hour_outcomes),
+        "bias": _bias_part(bias, chi, counts, reports_per_device, pairs),
         "secure_aggregation": secure_part(rounds, secure, config.rounds.accept_count, config.workload),
         "load": {
             "peak_working": int(peak),

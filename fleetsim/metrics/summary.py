@@ -10,11 +10,16 @@ import pandas as pd
 
 from ..analysis import quantiles
 from ..events import OUTCOMES, ROUND_STATUS, json_key
+from .bias import pair_name
 
-__all__ = ["clean", "rounds_part", "round_dropout_shares", "participations_part", "waste_part", "bias_map"]
+__all__ = ["clean", "rounds_part", "round_dropout_shares", "participations_part", "waste_part", "bias_map",
+           "pair_map"]
 
-BIAS_FIGURES = ["fleet_share", "eligible_share", "accepted_share", "report_share", "weight_share",
-                "representation_ratio", "ratio_low", "ratio_high", "never_share"]
+BIAS_FIGURES = ["fleet_share", "eligible_share", "accepted_share", "report_share", "weight_share", "example_share",
+                "representation_ratio", "ratio_low", "ratio_high", "weight_ratio", "weight_ratio_low",
+                "weight_ratio_high", "never_share"]
+"""A group's figures in summary.json: ``representation_ratio`` (report share / fleet share) and
+``weight_ratio`` (weight share / example share), each with its interval."""
 
 
 def clean(value: Any) -> Any:
@@ -113,3 +118,13 @@ def bias_map(table: pd.DataFrame, key: str) -> dict[str, Any]:
     also carry the sample counts they hold (``samples_low``, ``samples_high``)."""
     figures = [c for c in ("samples_low", "samples_high") if c in table.columns] + BIAS_FIGURES
     return {row[key]: {c: row[c] for c in figures} for row in table.to_dict("records")}
+
+
+def pair_map(table: pd.DataFrame) -> dict[str, Any]:
+    """The (device type, region) bias table as {type: {region: the figures of :func:`bias_map`}}:
+    nested by the fleet file's own names, so that each pair's study columns are its type and
+    region written as columns (``bias_by_type_and_region_<type>_<region>_<figure>``)."""
+    out: dict[str, dict[str, Any]] = {}
+    for row in table.to_dict("records"):
+        out.setdefault(row["device_type"], {})[row["region"]] = {c: row[c] for c in BIAS_FIGURES}
+    return out

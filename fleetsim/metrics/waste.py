@@ -5,7 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-__all__ = ["labelled_frame", "waste_sums", "waste_by_cause", "waste_by_device_type", "dropout_table", "device_cost"]
+__all__ = ["labelled_frame", "waste_sums", "waste_by_cause", "waste_by_device_type", "work_by_group", "dropout_table",
+           "device_cost", "WORK_COLUMNS"]
 
 _RESOURCES = ["compute_s", "bytes", "energy_wh", "examples"]
 """The work a participation costs, as columns of a labelled frame (see :func:`labelled_frame`)."""
@@ -45,28 +46,39 @@ def waste_by_cause(wasted: pd.DataFrame) -> pd.DataFrame:
     return by_cause
 
 
-def waste_by_device_type(labelled: pd.DataFrame, wasted: pd.DataFrame, type_names: list[str]) -> pd.DataFrame:
-    """All and wasted compute, bytes, energy and examples per device type, and the wasted fractions."""
-    by_type_all = labelled.groupby("device_type", observed=False)[_RESOURCES].sum()
-    by_type_waste = wasted.groupby("device_type", observed=False)[_RESOURCES].sum()
-    table = pd.DataFrame(
-        {
-            "device_type": type_names,
-            "compute_s": by_type_all["compute_s"].to_numpy(),
-            "wasted_compute_s": by_type_waste["compute_s"].to_numpy(),
-            "bytes": by_type_all["bytes"].to_numpy(),
-            "wasted_bytes": by_type_waste["bytes"].to_numpy(),
-            "energy_wh": by_type_all["energy_wh"].to_numpy(),
-            "wasted_energy_wh": by_type_waste["energy_wh"].to_numpy(),
-            "examples": by_type_all["examples"].to_numpy(),
-            "wasted_examples": by_type_waste["examples"].to_numpy(),
-        }
-    )
+def work_by_group(labelled: pd.DataFrame, wasted: pd.DataFrame, by: pd.Series | np.ndarray,
+                  wasted_by: pd.Series | np.ndarray, k: int) -> pd.DataFrame:
+    """All and wasted compute, bytes, energy and examples per group, and the wasted fractions.
+
+    ``by`` and ``wasted_by`` give the group code (0 .. k-1) of each row of ``labelled`` and of
+    ``wasted``; the columns are :data:`WORK_COLUMNS`, one row per group.
+    """
+    every = range(k)
+    done = labelled[_RESOURCES].groupby(np.asarray(by, dtype=np.int64)).sum().reindex(every, fill_value=0.0)
+    lost = wasted[_RESOURCES].groupby(np.asarray(wasted_by, dtype=np.int64)).sum().reindex(every, fill_value=0.0)
+    table = pd.DataFrame(index=every)
+    for col in _RESOURCES:
+        table[col] = done[col].to_numpy(dtype=float)
+        table[f"wasted_{col}"] = lost[col].to_numpy(dtype=float)
     with np.errstate(divide="ignore", invalid="ignore"):
         for key, col in (("compute", "compute_s"), ("bytes", "bytes"), ("energy", "energy_wh"),
                          ("examples", "examples")):
             table[f"{key}_fraction"] = table[f"wasted_{col}"] / table[col]
     return table
+
+
+WORK_COLUMNS = ["compute_s", "wasted_compute_s", "bytes", "wasted_bytes", "energy_wh", "wasted_energy_wh",
+                "examples", "wasted_examples", "compute_fraction", "bytes_fraction", "energy_fraction",
+                "examples_fraction"]
+"""The work columns of :func:`work_by_group`, in order."""
+
+
+def waste_by_device_type(labelled: pd.DataFrame, wasted: pd.DataFrame, type_names: list[str]) -> pd.DataFrame:
+    """All and wasted compute, bytes, energy and examples per device type, and the wasted fractions."""
+    table = work_by_group(labelled, wasted, labelled["device_type"].cat.codes, wasted["device_type"].cat.codes,
+                          len(type_names))
+    table.insert(0, "device_type", type_names)
+    return table[["device_type", *WORK_COLUMNS]]
 
 
 def dropout_table(drops: pd.DataFrame) -> pd.DataFrame:

@@ -28,7 +28,7 @@ __all__ = ["RunFolder", "read_run_folder"]
 # or missing values, so a region called "NA" or "1" stays exactly what the fleet file says.
 _TEXT_COLUMNS = {"device_type", "region", "data_quartile", "cause", "dropout_cause", "dropout_phase", "status",
                  "hour_utc", "opened_utc",
-                 "day_utc", "grouping", "scope", "workload"}
+                 "day_utc", "grouping", "scope", "workload", "clock"}
 
 # Every table the report reads, with the columns it needs.
 _TABLE_COLUMNS: dict[str, tuple[str, ...]] = {
@@ -54,13 +54,22 @@ _TABLE_COLUMNS: dict[str, tuple[str, ...]] = {
     "task_survival_by_minute": SURVIVAL_COLUMNS,
 }
 _BIAS_COLUMNS = ("devices", "fleet_share", "eligible_share", "accepted_share", "report_share", "weight_share",
-                 "representation_ratio", "ratio_low", "ratio_high", "accepted", "reports", "never_share")
+                 "representation_ratio", "ratio_low", "ratio_high", "example_share", "weight_ratio",
+                 "weight_ratio_low", "weight_ratio_high", "accepted", "reports", "never_share")
 BIAS_GROUPINGS = {"device_type": "bias_by_device_type", "region": "bias_by_region",
                   "data_quartile": "bias_by_data_quartile"}
 """Grouping column -> table name of the participation-bias tables."""
+PAIR_TABLE = "bias_by_device_type_region"
+"""The bias table of (device type, region) pairs."""
 
 for _key, _name in BIAS_GROUPINGS.items():
     _TABLE_COLUMNS[_name] = (_key, *_BIAS_COLUMNS)
+_TABLE_COLUMNS[PAIR_TABLE] = ("device_type", "region", *_BIAS_COLUMNS)
+_OUTCOME_COLUMNS = ("accepted", "abandoned_share", "failed_share", "compute_fraction", "bytes_fraction",
+                    "energy_fraction", "examples_fraction")
+_TABLE_COLUMNS["outcomes_by_region"] = ("region", *_OUTCOME_COLUMNS)
+_TABLE_COLUMNS["outcomes_by_hour"] = ("clock", "hour_of_day", "rounds", "rounds_committed", "rounds_abandoned",
+                                      "rounds_failed", *_OUTCOME_COLUMNS)
 
 _EVENT_COLUMNS = ("device_type", "outcome", "accepted_s", "ended_s")
 """Columns a run folder's event log must have (the report checks them; its figures come from tables)."""
@@ -76,6 +85,7 @@ _SUMMARY_KEYS = (
     "participations.round_dropout_share",
     "waste.compute_fraction", "waste.bytes_fraction", "waste.energy_fraction", "waste.examples_fraction",
     "waste.examples", "waste.examples_processed",
+    "outcomes.by_region", "outcomes.by_hour_utc", "outcomes.by_hour_local",
     "bias.coverage", "bias.gini", "bias.chi_square_device_type", "bias.chi_square_device_type_p",
     "bias.top_tenth_share",
     "load.peak_working", "load.mean_working", "load.checkins_per_s_peak_hour", "secure_aggregation",

@@ -67,6 +67,24 @@ BIAS_SERIES = (
 )
 
 
+def _ratio_panel(ax, y: np.ndarray, ratio: np.ndarray, low: np.ndarray, high: np.ndarray, key: str,
+                 title: str) -> None:
+    """A ratio per group (a dot labelled with its value) with its 95% interval and the line at 1."""
+    ax.axvline(1.0, color=COLOURS["fleet"], linewidth=1.2)
+    finite = np.isfinite(ratio)
+    err = np.vstack([ratio - low, high - ratio])
+    edges = {"markeredgecolor": edge(key)} if key == "weight" else {}  # the pale yellow dot needs its edge
+    ax.errorbar(ratio[finite], y[finite], xerr=err[:, finite], fmt="o", color=COLOURS[key],
+                ecolor=INK, elinewidth=1.1, capsize=3, markersize=5, **edges)
+    for yi, r in zip(y, ratio, strict=True):
+        if np.isfinite(r):
+            ax.text(r, yi - 0.3, f"{r:.2f}", ha="center", va="bottom", fontsize=7.5, color=INK)
+    ax.set_title(title)
+    top = np.nanmax(high[np.isfinite(high)]) if np.isfinite(high).any() else 1.0
+    ax.set_xlim(0, max(1.5, float(top) * 1.12))
+    ax.tick_params(axis="y", length=0)
+
+
 def bias(
     title: str,
     names: Sequence[str],
@@ -75,11 +93,16 @@ def bias(
     low: np.ndarray,
     high: np.ndarray,
     prefix: str,
+    weight: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
 ) -> str:
-    """Five shares per group side by side, and the representation ratio with its 95% interval."""
+    """Five shares per group side by side, and the representation ratio (report share / fleet
+    share) with its 95% interval; with ``weight`` (ratio, low, high) a third panel of the weight
+    ratio (weight share / example share) and its interval."""
     n = len(names)
     with figure(0.62 * n + 1.5) as fig:
-        left, right = fig.subplots(1, 2, sharey=True, width_ratios=[2.2, 1])
+        panels = fig.subplots(1, 3 if weight is not None else 2, sharey=True,
+                              width_ratios=[2.2, 1, 1] if weight is not None else [2.2, 1])
+        left, right = panels[0], panels[1]
         y = bars_h(left, names)
         height = 0.8 / len(BIAS_SERIES)
         for j, (column, key, label) in enumerate(BIAS_SERIES):
@@ -89,18 +112,10 @@ def bias(
         left.set_title(f"Shares by {title}")
         left.xaxis.set_major_formatter(lambda v, _: f"{v:.0%}")
         left.set_xlim(0, None)
-        right.axvline(1.0, color=COLOURS["fleet"], linewidth=1.2)
-        finite = np.isfinite(ratio)
-        err = np.vstack([ratio - low, high - ratio])
-        right.errorbar(ratio[finite], y[finite], xerr=err[:, finite], fmt="o", color=COLOURS["committed"],
-                       ecolor=INK, elinewidth=1.1, capsize=3, markersize=5)
-        for yi, r in zip(y, ratio, strict=True):
-            if np.isfinite(r):
-                right.text(r, yi - 0.3, f"{r:.2f}", ha="center", va="bottom", fontsize=7.5, color=INK)
-        right.set_title("Report share / fleet share")
-        top = np.nanmax(high[np.isfinite(high)]) if np.isfinite(high).any() else 1.0
-        right.set_xlim(0, max(1.5, float(top) * 1.12))
-        right.tick_params(axis="y", length=0)
+        split = "\n" if weight is not None else " "  # three panels: the titles take two lines
+        _ratio_panel(right, y, ratio, low, high, "committed", f"Report share /{split}fleet share")
+        if weight is not None:
+            _ratio_panel(panels[2], y, *weight, "weight", "Weight share /\nexample share")
         fig.legend(loc="outside upper left", ncols=5, handles=[
             Patch(facecolor=COLOURS[k], edgecolor=edge(k), label=lab) for _, k, lab in BIAS_SERIES])
         return svg_of(fig, prefix)
