@@ -554,7 +554,7 @@ def test_compare_of_identical_settings_finds_no_change(compare_folder):
     arms = result.runs.drop(columns="arm_settings").set_index(["arm", "seed"])
     pd.testing.assert_frame_equal(arms.loc["baseline"], arms.loc["candidate"])
     d = result.differences
-    assert set(d["verdict"]) <= {"no-detectable-change", "too-few-seeds"}
+    assert set(d["verdict"]) <= {"no-detectable-change", "too-few-seeds", "not-tested-constant", "judged-as-rate"}
     assert (d.loc[d["verdict"] == "too-few-seeds", "seeds"] < 2).all()  # undefined in these runs
     assert ((d["verdict"] == "no-detectable-change") & (d["seeds"] == 3)).sum() > 100
     assert "no detectable change at 3 seeds" in render_compare(result)

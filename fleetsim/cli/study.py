@@ -95,7 +95,8 @@ def sweep(
     ),
     maximise: str | None = typer.Option(None, "--maximise", help="Metric (a study column) the recommendation "
                                         "maximises; default rounds_committed_per_hour, or with several "
-                                        "workloads study_rounds_committed_per_hour (their sum)."),
+                                        "workloads study_rounds_committed_per_hour (their sum); others such as "
+                                        "study_used_reports_per_hour or study_used_examples_per_hour."),
     minimise: str | None = typer.Option(None, "--minimise", help="Metric the recommendation minimises instead."),
     limit: list[str] = typer.Option([], "--limit", help="A bound the recommended cell's mean must meet: "
                                     "METRIC<=VALUE or METRIC>=VALUE, e.g. waste_compute_fraction<=0.3 "
@@ -161,7 +162,8 @@ def compare(
         [], "--candidate", help="A setting of the candidate: key.path=value (repeatable; e.g. "
                                 "sharing.rule=shares with workloads.NAME.share=... for every workload)."
     ),
-    seeds: int = typer.Option(5, "--seeds", help="Seeds: first-seed .. first-seed+N-1; each runs both arms."),
+    seeds: int | None = typer.Option(None, "--seeds", help="Seeds: first-seed .. first-seed+N-1; each runs both "
+                                     "arms (default 5).", show_default=False),
     first_seed: int = seed_option(0, "--first-seed", "The first seed."),
     out: Path | None = typer.Option(
         None, "--out", "-o", help="Folder for tables and saved runs (makes the comparison resumable)."
@@ -171,6 +173,18 @@ def compare(
     days: float | None = typer.Option(None, "--days", help="Horizon length in days (overrides the file)."),
     stress: Path | None = typer.Option(None, "--stress", help="YAML file with a 'disruptions:' list; both arms "
                                        "also run with it added, and each condition is compared."),
+    primary: list[str] = typer.Option([], "--primary", help="A primary metric (repeatable): judged under Holm's "
+                                      "method and deciding the overall line. Default: rounds_committed_per_hour, "
+                                      "waste_compute_fraction, study_worst_representation (with several workloads "
+                                      "the study_* totals)."),
+    margin: list[str] = typer.Option([], "--margin", help="METRIC=2% (of the baseline mean) or METRIC=0.5: the "
+                                     "largest change that does not matter; tested by TOST (repeatable)."),
+    sequential: bool = typer.Option(False, "--sequential", help="Run --batch seeds at a time until every primary "
+                                    "metric is decided or --seed-budget is spent (group-sequential design)."),
+    seed_budget: int | None = typer.Option(None, "--seed-budget", help="With --sequential: the most seeds to run.",
+                                           show_default=False),
+    batch: int | None = typer.Option(None, "--batch", help="With --sequential: seeds per look (default 5).",
+                                     show_default=False),
     detect: list[str] = typer.Option([], "--detect", help="METRIC=CHANGE: how many seeds would detect this change, "
                                      "e.g. rounds_committed_per_hour=5% (a number, or a percentage of the "
                                      "baseline mean; repeatable)."),
@@ -180,16 +194,17 @@ def compare(
     every: bool = typer.Option(False, "--all", help="Print every metric, not only the headline ones."),
     force: bool = typer.Option(False, "--force", help=_FORCE_HELP),
 ) -> None:
-    """Run a baseline and a candidate under the same seeds; paired differences, intervals and
-    a verdict code per metric (better, worse, higher, lower, no-detectable-change, too-few-seeds)."""
+    """Run a baseline and a candidate under the same seeds; paired differences, intervals, adjusted
+    p-values and a verdict per metric, and one overall line decided by the primary metrics."""
     from ..study.compare import Arm, parse_detect, run_compare
     from ..study.compare_output import render_compare, write_compare
+    from ..study.compare_rules import parse_design, parse_margin
     from ..study.executors import make_executor
 
     try:
-        if seeds < 1:
-            raise ConfigError([f"--seeds {seeds}: expected at least 1"])
+        chosen, plan = parse_design(seeds, sequential, seed_budget, batch, first_seed)
         wanted = [parse_detect(text) for text in detect]
+        margins = [parse_margin(text) for text in margin]
         executor = make_executor(workers, cluster)
         base = _base(file, overrides, devices, days, None)
         if out is not None:
@@ -197,8 +212,9 @@ def compare(
         with _progress() as update:
             result = run_compare(
                 base, Arm("baseline", tuple(baseline)), Arm("candidate", tuple(candidate)),
-                range(first_seed, first_seed + seeds), stress=stress, detect=wanted, power=power,
-                executor=executor, folder=out, progress=update,
+                chosen, stress=stress, detect=wanted, power=power,
+                executor=executor, folder=out, progress=update, primary=list(primary) or None,
+                margins=margins, sequential=plan,
             )
         if out is not None:
             write_compare(result, out)

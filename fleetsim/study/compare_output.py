@@ -2,9 +2,13 @@
 
 In the folder: ``cells/`` (resume), ``runs.parquet/.csv`` (every metric per condition, arm
 and seed, with ``condition``, ``stress_file``, ``arm`` and ``arm_settings``),
-``differences.parquet/.csv`` (one row per condition and metric, with the verdict code,
-``seeds`` and ``alpha``), ``comparison.json`` (the design, the code tables, the verdicts)
-and ``comparison.md`` (the text, every metric).
+``differences.parquet/.csv`` (one row per condition and metric, with its role, p-values
+raw and adjusted, TOST result, verdict code, ``seeds`` and ``alpha``), ``comparison.json``
+(the design, the methods, the code tables, the verdicts, the overall line per condition) and
+``comparison.md`` (the text, every metric).
+
+The text opens each condition with the primary metrics, then the secondary ones, and ends it
+with the overall line (:mod:`fleetsim.study.compare_overall`).
 """
 
 from __future__ import annotations
@@ -18,10 +22,12 @@ import pandas as pd
 
 from .. import __version__
 from .compare import ComparisonResult
+from .compare_methods import design_record, method_lines, methods
+from .compare_overall import OVERALL
 from .stats import LEVEL
 from .store import atomic_text, save_frame
 from .table import SEVERAL_TOTALS, WORST_REPRESENTATION, column_name, direction_of, workload_prefix, workload_prefixes
-from .verdicts import ALPHA, CONDITIONS, VERDICTS, Condition, verdict_text
+from .verdicts import ALPHA, CONDITIONS, ROLES, VERDICTS, Condition, verdict_text
 
 __all__ = ["render_compare", "comparison_record", "write_compare", "headline_metrics", "HEADLINE",
            "HEADLINE_SEVERAL"]
@@ -53,10 +59,21 @@ def _signed(x: float) -> str:
     return "n/a" if not math.isfinite(x) else f"{x:+.4g}"
 
 
+def _p(x: Any) -> str:
+    if x is None or x is pd.NA or (isinstance(x, float) and not math.isfinite(x)):
+        return "-"
+    return f"{x:.2g}" if x < 0.001 else f"{x:.3f}"
+
+
 def _row_text(row: pd.Series, name: str, width: int) -> str:
     interval = "" if not math.isfinite(row["low"]) else f" [{_signed(row['low'])}, {_signed(row['high'])}]"
+    said = verdict_text(row["verdict"], row["seeds"])
+    if isinstance(row["margin"], str) and math.isfinite(row["tost_p_adjusted"]):
+        said += f" (TOST adj. p {_p(row['tost_p_adjusted'])} for +-{row['margin']})"
+    elif row["verdict"] == "judged-as-rate":
+        said += f" ({row['judged_as']})"
     return (f"  {name:<{width}} {_num(row['baseline_mean']):>10} {_num(row['candidate_mean']):>10}  "
-            f"{(_signed(row['difference']) + interval):<34} {verdict_text(row['verdict'], row['seeds'])}")
+            f"{(_signed(row['difference']) + interval):<34} {_p(row['p_adjusted']):>7}  {said}")
 
 
 def headline_metrics(workloads: list[str]) -> list[str]:
@@ -96,17 +113,23 @@ def _shown(part: pd.DataFrame, result: ComparisonResult, every_metric: bool) -> 
 
 
 def _condition_lines(result: ComparisonResult, condition: Condition, every_metric: bool) -> list[str]:
+    """One condition: the primary metrics, the secondary ones shown, the counts, the overall line."""
     d = result.differences
     part = d[d["condition"] == condition.code].set_index("metric", drop=False)
-    shown = _shown(part, result, every_metric)
-    width = max([len(n) for m, n in shown if m is not None] + [20])
-    lines = ["", f"{condition.text}:",
-             f"  {'metric':<{width}} {'baseline':>10} {'candidate':>10}  {'difference [95% interval]':<34} verdict"]
+    primary: Shown = [(m, m) for m in result.primary if m in part.index]
+    shown = [(m, n) for m, n in _shown(part, result, every_metric) if m not in result.primary]
+    width = max([len(n) for m, n in primary + shown if m is not None] + [20])
+    head = (f"  {'metric':<{width}} {'baseline':>10} {'candidate':>10}  {'difference [95% interval]':<34} "
+            f"{'adj. p':>7}  verdict")
+    lines = ["", f"{condition.text}:", f"  primary metrics (Holm; family-wise error {100 * ALPHA:g}%):", head]
+    lines += [_row_text(part.loc[m], n, width) for m, n in primary]
+    lines += ["", f"  secondary metrics (Benjamini-Hochberg; false discovery rate {100 * ALPHA:g}%):", head]
     for metric, name in shown:
         lines.append(name if metric is None else _row_text(part.loc[metric], name, width))
     counts = part["verdict"].value_counts()
     lines.append("  all metrics: " + ", ".join(f"{v} {k}" for k, v in counts.items())
                  + " (every metric in differences.csv, or rerun with --all)")
+    lines.append(f"  overall: {result.overall[condition.code].text}")
     return lines
 
 
@@ -135,7 +158,9 @@ def render_compare(result: ComparisonResult, every_metric: bool = False) -> str:
         f"  baseline:  {result.baseline.label}",
         f"  candidate: {result.candidate.label}",
         f"  {runs} runs on {result.executor}; {result.reused} reused; {result.wall_s:.1f} s",
-        "  differences are candidate - baseline, mean over seeds with 95% paired t intervals",
+        "  differences are candidate - baseline, mean over seeds with 95% paired t intervals; adj. p is the "
+        "p-value of no change after adjustment",
+        *method_lines(result),
     ]
     if result.workloads:
         lines.append(f"  workloads {', '.join(result.workloads)}: each one's figures are workloads_<name>_<column>; "
@@ -152,6 +177,7 @@ def render_compare(result: ComparisonResult, every_metric: bool = False) -> str:
                         for row in d[(d["condition"] == condition.code) & (d["metric"] == metric)].itertuples()]
             if verdicts and direction_of(metric, prefixes):
                 lines.append(f"  {metric}: " + "; ".join(verdicts))
+        lines += [f"  overall {c.text}: {result.overall[c.code].text}" for c in result.conditions]
     if not result.detections.empty:
         lines += _detection_lines(result)
     lines += ["", f"caution: {result.caution}"]
@@ -180,6 +206,16 @@ def comparison_record(result: ComparisonResult) -> dict[str, Any]:
         "power": result.power,
         "verdict_codes": VERDICTS,
         "verdicts": {c.code: verdicts(c.code) for c in result.conditions},
+        "primary": list(result.primary),
+        "role_codes": ROLES,
+        "margins": [{"metric": m.metric, "margin": m.text, "relative": m.relative, "value": m.value}
+                    for m in result.margins],
+        "count_rates": dict(result.rate_of),
+        "methods": methods(result),
+        "design": design_record(result),
+        "overall_codes": OVERALL,
+        "overall": {c: {"verdict": o.verdict, "reason": o.reason, "primary": o.primary}
+                    for c, o in result.overall.items()},
         "detections": json.loads(result.detections.to_json(orient="records")),
         "executor": result.executor,
         "runs_reused": result.reused,

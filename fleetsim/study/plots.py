@@ -7,6 +7,7 @@ global state or GUI backend is touched and plotting is safe in any process.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
@@ -34,10 +35,12 @@ def _errors(mean: np.ndarray, low: np.ndarray, high: np.ndarray) -> np.ndarray:
 
 def frontier_plot(result: Any, path: Path, fmt: str = "png") -> None:
     """Committed rounds per hour (x) against compute waste fraction (y) for every cell, coloured
-    by worst representation; front cells outlined and numbered, the recommendation starred.
-    Bars are 95% intervals across seeds. With several workloads the axes are the front's
-    totals: committed rounds per hour summed over the workloads, the worst workload's waste and
-    the worst representation of any workload."""
+    by worst representation on a scale fitted to the cells' values; every cell numbered, front
+    cells outlined, cells that miss a limit crossed, the recommendation starred. A limit on
+    either axis is drawn as a line with its infeasible side shaded, a limit on the colour as a
+    line on the colour bar. Bars are 95% intervals across seeds. With several workloads the
+    axes are the front's totals: committed rounds per hour summed over the workloads, the worst
+    workload's waste and the worst representation of any workload."""
     (throughput, _), (waste, _), (representation, _) = result.objectives
     several = bool(result.workloads)
     x, xl, xh = _stats(result, throughput)
@@ -49,22 +52,34 @@ def frontier_plot(result: Any, path: Path, fmt: str = "png") -> None:
     ax.errorbar(x, y, xerr=_errors(x, xl, xh), yerr=_errors(y, yl, yh), fmt="none",
                 ecolor="0.75", elinewidth=0.8, zorder=1)
     on_front = np.array([cell.index in result.front for cell in result.grid])
-    colour = np.where(np.isfinite(c), c, 0.0)
-    points = ax.scatter(x[~on_front], y[~on_front], c=colour[~on_front], cmap="viridis", vmin=0, vmax=1,
+    known = np.isfinite(c)
+    low, high = _colour_range(c)
+    rest, best = ~on_front & known, on_front & known
+    points = ax.scatter(x[rest], y[rest], c=c[rest], cmap="viridis", vmin=low, vmax=high,
                         s=36, alpha=0.6, zorder=2, label="other cells")
-    ax.scatter(x[on_front], y[on_front], c=colour[on_front], cmap="viridis", vmin=0, vmax=1,
-               s=90, edgecolors="black", linewidths=1.2, zorder=3, label="Pareto front")
+    ax.scatter(x[best], y[best], c=c[best], cmap="viridis", vmin=low, vmax=high, s=90, edgecolors="black",
+               linewidths=1.2, zorder=3, label="Pareto front")
+    if not known.all():
+        ax.scatter(x[~known], y[~known], color="0.8", edgecolors="0.4", s=50, zorder=2,
+                   label="no representation (no round committed)")
+    feasible = set(result.recommendation.feasible)
+    missed = np.array([cell.index not in feasible for cell in result.grid])
+    if result.recommendation.limits and missed.any():
+        ax.scatter(x[missed], y[missed], marker="x", color="crimson", s=40, linewidths=1.0, zorder=4,
+                   label="misses a limit")
     for i, cell in enumerate(result.grid):
-        if on_front[i] and math.isfinite(x[i]) and math.isfinite(y[i]):
-            ax.annotate(str(cell.index), (x[i], y[i]), xytext=(5, 5), textcoords="offset points", fontsize=8)
+        if math.isfinite(x[i]) and math.isfinite(y[i]):
+            ax.annotate(str(cell.index), (x[i], y[i]), xytext=(5, 5), textcoords="offset points", fontsize=8,
+                        fontweight="bold" if on_front[i] else "normal")
     rec = result.recommendation.cell
     if rec is not None:
         i = [cell.index for cell in result.grid].index(rec)
         ax.scatter([x[i]], [y[i]], marker="*", s=320, facecolors="none", edgecolors="crimson",
-                   linewidths=1.5, zorder=4, label=f"recommended: {result.recommendation.label}")
+                   linewidths=1.5, zorder=5, label=f"recommended: {result.recommendation.label}")
     over = "workloads and types" if several else "types"
-    figure.colorbar(points, ax=ax, label=f"worst representation, min over {over} of min(r, 1/r)")
-    _fit_to_means(ax, x, y)
+    bar = figure.colorbar(points, ax=ax, label=f"worst representation, min over {over} of min(r, 1/r)")
+    _fit_to_means(ax, x, y, _bounds(result, throughput), _bounds(result, waste))
+    _draw_limits(ax, bar, result, throughput, waste, representation)
     ax.set_xlabel("committed rounds per hour" + (", summed over workloads" if several else "")
                   + " (higher is better)")
     ax.set_ylabel("straggler waste, fraction of compute" + (", worst workload" if several else "")
@@ -76,13 +91,62 @@ def frontier_plot(result: Any, path: Path, fmt: str = "png") -> None:
     figure.savefig(path, format=fmt, dpi=110)
 
 
-def _fit_to_means(ax: object, x: np.ndarray, y: np.ndarray) -> None:
-    """Frame the means (not the interval bars, which may be far wider with few seeds)."""
-    for values, setter in ((x, ax.set_xlim), (y, ax.set_ylim)):  # type: ignore[attr-defined]
+def _colour_range(values: np.ndarray) -> tuple[float, float]:
+    """The colour scale: the cells' smallest to largest finite value (a little either side of
+    a single value), so that differences between the cells show."""
+    finite = values[np.isfinite(values)]
+    if finite.size == 0:
+        return 0.0, 1.0
+    low, high = float(finite.min()), float(finite.max())
+    if high - low < 1e-12:
+        pad = 0.05 * max(abs(high), 1e-3)
+        return low - pad, high + pad
+    return low, high
+
+
+def _bounds(result: Any, metric: str) -> list[float]:
+    return [lim.value for lim in result.recommendation.limits if lim.metric == metric]
+
+
+def _draw_limits(ax: Any, bar: Any, result: Any, x_metric: str, y_metric: str, colour_metric: str) -> None:
+    """Each limit on a plotted figure: a dashed line at the bound, the infeasible side shaded."""
+    for lim in result.recommendation.limits:
+        label = f"limit {lim}"
+        if lim.metric == x_metric:
+            left, right = ax.get_xlim()
+            ax.axvline(lim.value, color="crimson", linestyle="--", linewidth=1.0, label=label)
+            ax.axvspan(*((left, lim.value) if lim.operator == ">=" else (lim.value, right)),
+                       color="crimson", alpha=0.08, zorder=0)
+            ax.set_xlim(left, right)
+        elif lim.metric == y_metric:
+            bottom, top = ax.get_ylim()
+            ax.axhline(lim.value, color="crimson", linestyle="--", linewidth=1.0, label=label)
+            ax.axhspan(*((bottom, lim.value) if lim.operator == ">=" else (lim.value, top)),
+                       color="crimson", alpha=0.08, zorder=0)
+            ax.set_ylim(bottom, top)
+        elif lim.metric == colour_metric:
+            bar.ax.axhline(lim.value, color="crimson", linestyle="--", linewidth=1.5)
+            low, high = bar.ax.get_ylim()
+            if lim.operator == ">=" and lim.value > low:
+                bar.ax.axhspan(low, min(lim.value, high), color="crimson", alpha=0.25)
+            elif lim.operator == "<=" and lim.value < high:
+                bar.ax.axhspan(max(lim.value, low), high, color="crimson", alpha=0.25)
+            bar.ax.set_ylim(low, high)
+            ax.plot([], [], color="crimson", linestyle="--", label=f"{label} (on the colour bar)")
+
+
+def _fit_to_means(ax: object, x: np.ndarray, y: np.ndarray, x_bounds: Sequence[float] = (),
+                  y_bounds: Sequence[float] = ()) -> None:
+    """Frame the means (not the interval bars, which may be far wider with few seeds), and a
+    limit's bound when it lies within one span of the means (a farther one stays out of view)."""
+    for values, bounds, setter in ((x, x_bounds, ax.set_xlim), (y, y_bounds, ax.set_ylim)):  # type: ignore[attr-defined]
         finite = values[np.isfinite(values)]
         if finite.size == 0:
             continue
         low, high = float(finite.min()), float(finite.max())
+        reach = max(high - low, 0.1 * max(abs(high), 1e-3))
+        near = [b for b in bounds if low - reach <= b <= high + reach]
+        low, high = min([low, *near]), max([high, *near])
         pad = 0.15 * (high - low) if high > low else 0.1 * max(abs(high), 1e-3)
         setter(low - pad, high + pad)
 

@@ -5,11 +5,14 @@ The rule, applied to the per-cell means over seeds:
 1. a cell meets the limits when every limited metric's mean satisfies its limit (a mean
    that is not finite does not);
 2. among those, the recommendation has the best mean objective; among exactly equal means a
-   cell on the Pareto front goes first, then the lower cell index (the earlier cell of the
-   grid);
+   cell on the Pareto front goes first, then the lower cell index (the earlier one);
 3. the runner-up is the next best cell that meets the limits. How close it is: the gap in
    mean objective, and the paired 95% interval of the per-seed gap (both cells ran on the
    same seeds, see docs/studies.md on common random numbers).
+
+:func:`explain` then sets the mechanism figures behind the pick (rounds abandoned and failed,
+device supply against demand, waste by cause) beside those of the runner-up, or of the
+baseline cell when there is none (docs/studies.md, "Why").
 """
 
 from __future__ import annotations
@@ -23,9 +26,11 @@ import numpy as np
 import pandas as pd
 
 from ..errors import ConfigError
+from ..events import WASTE_CAUSES, json_key
 from .stats import Interval, mean_interval, paired_interval
+from .table import workload_prefix
 
-__all__ = ["Objective", "Limit", "Recommendation", "parse_limit", "recommend"]
+__all__ = ["Objective", "Limit", "Recommendation", "Why", "parse_limit", "recommend", "explain"]
 
 
 @dataclass(frozen=True)
@@ -270,3 +275,126 @@ def _closest(means: pd.DataFrame, limits: list[Limit]) -> tuple[int, Limit] | No
         if best is None or worst[0] < best[0]:
             best = (worst[0], int(cell), worst[1])  # type: ignore[arg-type]
     return None if best is None else (best[1], best[2])
+
+
+@dataclass
+class Why:
+    """The mechanism figures behind a recommendation, beside those of the cell it is held
+    against (``basis``: ``runner-up``, ``baseline`` (cell 0) or ``next best`` (the best other
+    cell by the objective, limits aside)). ``figures``: one mapping per workload (None for a
+    single one) and figure with its cell means, ``recommended`` and ``against``; ``lines``:
+    the text printed."""
+
+    against: int | None
+    against_label: str | None
+    basis: str
+    figures: list[dict[str, Any]] = field(default_factory=list)
+    lines: list[str] = field(default_factory=list)
+
+    def as_dict(self) -> dict[str, Any]:
+        figures = [{k: (None if isinstance(v, float) and not math.isfinite(v) else v) for k, v in f.items()}
+                   for f in self.figures]
+        return {"against": self.against, "against_label": self.against_label, "basis": self.basis,
+                "figures": figures, "lines": self.lines}
+
+
+def _against(cells: pd.DataFrame, rec: Recommendation) -> tuple[int | None, str]:
+    """The cell a recommendation is explained against, and why that one."""
+    if rec.runner_up is not None:
+        return rec.runner_up, "runner-up"
+    others = cells[cells["cell"] != rec.cell]
+    if others.empty:
+        return None, "none"
+    if int(cells["cell"].min()) != rec.cell:
+        return int(cells["cell"].min()), "baseline"
+    values = others[rec.objective.metric].astype(float) * (1.0 if rec.objective.maximise else -1.0)
+    return int(others.loc[values.fillna(-math.inf).idxmax(), "cell"]), "next best"
+
+
+def _mechanism(runs: pd.DataFrame, p: str) -> dict[str, pd.Series]:
+    """Per run, the figures of one workload (column prefix ``p``) the explanation reads."""
+    def col(name: str) -> pd.Series:
+        return runs[p + name].astype(float) if p + name in runs.columns else pd.Series(math.nan, index=runs.index)
+
+    hours = runs["simulated_hours"].astype(float) if "simulated_hours" in runs.columns else col("simulated_hours")
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = {
+            "abandoned_share": col("study_abandoned_share"), "failed_share": col("study_failed_share"),
+            "checkins_per_hour": 3600.0 * col("server_load_checkins_per_s_mean"),
+            "accepted_per_hour": col("server_load_accepted") / hours,
+            "accepted_share_of_checkins": 1.0 - col("server_load_turned_away_share"),
+            "accepted_per_round": col("participations_accepted") / col("rounds_attempted"),
+            "selection_at_timeout": col("rounds_selection_at_timeout"),
+            "eligible_correlation": col("rounds_eligible_correlation"),
+            "waste_compute_fraction": col("waste_compute_fraction"),
+        }
+        wasted = col("waste_compute_s")
+        for cause in WASTE_CAUSES[1:]:
+            spent = col(f"waste_by_cause_{json_key(cause)}_compute_s").fillna(0.0)
+            out[f"waste_{json_key(cause)}_compute_share"] = (out["waste_compute_fraction"] * spent / wasted).where(
+                wasted > 0, 0.0)
+    return out
+
+
+def _pct(x: float) -> str:
+    return "n/a" if not math.isfinite(x) else f"{100 * x:.1f}%"
+
+
+def _num(x: float) -> str:
+    return "n/a" if not math.isfinite(x) else f"{x:,.0f}" if abs(x) >= 100 else f"{x:.3g}"
+
+
+def _lines(f: dict[str, tuple[float, float]], asked: tuple[float, float], head: str) -> list[str]:
+    """The printed lines of one workload: each figure as recommended, then ``against`` the other."""
+    def pair(name: str, show: Any = _pct) -> str:
+        a, b = f[name]
+        return f"{show(a)} against {show(b)}"
+
+    (ar, ab), (sr, sb) = f["accepted_per_hour"], f["accepted_share_of_checkins"]
+    (pr, pb), (qr, qb) = f["accepted_per_round"], asked
+    peak = {k: max(v if math.isfinite(v) else 0.0 for v in f[k]) for k in f
+            if k.startswith("waste_") and k.endswith("_compute_share")}
+    causes = sorted((k for k in peak if peak[k] > 0), key=lambda k: -peak[k])
+    top = [f"{k[6:-14].replace('_', ' ')} {pair(k)}" for k in causes[:3]]
+    return [
+        f"{head}rounds: abandoned at the selection timeout {pair('abandoned_share')}; failed (report deadline "
+        f"or unmasking) {pair('failed_share')}",
+        f"{head}supply: {pair('checkins_per_hour', _num)} eligible check-ins per hour; committed rounds follow "
+        f"eligible devices by hour with r = {pair('eligible_correlation', _num)}",
+        f"{head}demand: {_num(ar)} accepted per hour ({_pct(sr)} of the estimated check-ins) against {_num(ab)} "
+        f"({_pct(sb)}); "
+        f"{_num(pr)} accepted per round of {_num(qr)} asked against {_num(pb)} of {_num(qb)}; selections "
+        f"that ran to the timeout {pair('selection_at_timeout')}",
+        f"{head}waste: {pair('waste_compute_fraction')} of compute" + ("; by cause: " + ", ".join(top) if top else ""),
+    ]
+
+
+def explain(cells: pd.DataFrame, runs: pd.DataFrame, rec: Recommendation, workloads: list[str],
+            asked: dict[int, dict[str, float]]) -> Why | None:
+    """The mechanism figures behind ``rec`` against the runner-up or baseline (None without a
+    recommendation). ``cells``/``runs`` as for :func:`recommend`; ``workloads`` the names of
+    several (empty for one); ``asked[cell][name]`` the devices a full round of that workload
+    asks for (``""`` for a single workload). Every figure is the cell's mean over its seeds of
+    the per-run figure (runs where it is undefined left out)."""
+    if rec.cell is None:
+        return None
+    other, basis = _against(cells, rec)
+    labels = cells.set_index("cell")["label"].to_dict()
+    why = Why(against=other, against_label=labels.get(other), basis=basis)
+    if other is None:
+        why.lines.append("no other cell to set it against")
+        return why
+    for name in workloads or [""]:
+        p = workload_prefix(name) if name else ""
+        per_run = _mechanism(runs, p)
+        figures: dict[str, tuple[float, float]] = {}
+        for figure, values in per_run.items():
+            pair = tuple(float(values[runs["cell"] == c].mean()) for c in (rec.cell, other))
+            figures[figure] = pair  # type: ignore[assignment]
+            why.figures.append({"workload": name or None, "figure": figure, "recommended": pair[0],
+                                "against": pair[1]})
+        need = (asked.get(rec.cell, {}).get(name, math.nan), asked.get(other, {}).get(name, math.nan))
+        why.figures.append({"workload": name or None, "figure": "asked_per_round", "recommended": need[0],
+                            "against": need[1]})
+        why.lines.extend(_lines(figures, need, f"{name}: " if name else ""))
+    return why

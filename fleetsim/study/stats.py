@@ -8,8 +8,18 @@
 - :func:`paired_power` and :func:`seeds_needed`: power of the two-sided paired t test from
   the noncentral t distribution, power = P(|T'| > t_crit) with T' ~ t(n - 1, delta sqrt(n)
   / sigma) (Cohen, Statistical Power Analysis for the Behavioral Sciences, 2nd ed., 1988,
-  ch. 2; the paired test is the one-sample test on differences). The references are cited
-  from memory.
+  ch. 2; the paired test is the one-sample test on differences).
+- :func:`paired_t`: the paired t test of "no difference": t = mean(d) / (s_d / sqrt(n)) with
+  n - 1 degrees of freedom, its two-sided p-value and its one-sided ones.
+- :func:`tost`: two one-sided tests for equivalence within a margin delta (Schuirmann,
+  Journal of Pharmacokinetics and Biopharmaceutics 15, 1987): H01 mean <= -delta is refuted
+  when t_low = (mean(d) + delta) / se is large, H02 mean >= delta when t_high = (mean(d) -
+  delta) / se is very negative; the TOST p-value is the larger of the two one-sided p-values,
+  and p <= alpha exactly when the 1 - 2 alpha interval lies inside (-delta, delta).
+  The references are cited from memory.
+
+When every difference is the same (s_d = 0) the tests take their limits: no difference has
+p = 1 and a difference has p = 0; a mean inside the margin is equivalent with p = 0.
 
 Values that are not finite (a metric a run could not measure) are left out; ``n`` says how
 many runs an interval rests on.
@@ -23,7 +33,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
-__all__ = ["Interval", "mean_interval", "paired_interval", "paired_power", "seeds_needed", "LEVEL"]
+__all__ = ["Interval", "PairedTest", "Tost", "mean_interval", "paired_interval", "one_sample_t", "paired_t", "tost",
+           "paired_power", "seeds_needed", "LEVEL"]
 
 LEVEL = 0.95
 """Confidence level of every interval a study reports."""
@@ -83,6 +94,81 @@ def paired_interval(baseline: np.ndarray | list[float], candidate: np.ndarray | 
     if b.shape != c.shape:
         raise ValueError(f"paired values need equal lengths, got {b.size} and {c.size}")
     return mean_interval(c - b, level)
+
+
+@dataclass(frozen=True)
+class PairedTest:
+    """The paired t test of ``n`` finite differences: their mean, standard error, t statistic
+    (n - 1 degrees of freedom), the two-sided p-value and the one-sided ones for a mean above
+    0 (``p_above``) and below 0 (``p_below``). NaN statistics and p-values when n < 2."""
+
+    n: int
+    mean: float
+    se: float
+    t: float
+    p: float
+    p_above: float
+    p_below: float
+
+
+def one_sample_t(d: np.ndarray | list[float], shift: float = 0.0) -> PairedTest:
+    """The one-sample t test of mean(d) = ``shift`` on the finite values of ``d`` (the paired
+    test when ``d`` holds the per-seed differences)."""
+    values = np.asarray(d, dtype=float)
+    kept = values[np.isfinite(values)]
+    n = int(kept.size)
+    if n < 2:
+        mean = float(kept.mean()) if n else math.nan
+        return PairedTest(n, mean, math.nan, math.nan, math.nan, math.nan, math.nan)
+    mean = float(kept.mean())
+    se = float(kept.std(ddof=1)) / math.sqrt(n)
+    gap = mean - shift
+    if se == 0.0:
+        t = 0.0 if gap == 0 else math.copysign(math.inf, gap)
+    else:
+        t = gap / se
+    above = float(stats.t.sf(t, n - 1))
+    below = float(stats.t.cdf(t, n - 1))
+    return PairedTest(n, mean, se, t, min(1.0, 2.0 * min(above, below)), above, below)
+
+
+def paired_t(baseline: np.ndarray | list[float], candidate: np.ndarray | list[float]) -> PairedTest:
+    """The paired t test of candidate - baseline = 0 (pairs with both values finite).
+
+    Raises ValueError if the arrays differ in length.
+    """
+    b = np.asarray(baseline, dtype=float)
+    c = np.asarray(candidate, dtype=float)
+    if b.shape != c.shape:
+        raise ValueError(f"paired values need equal lengths, got {b.size} and {c.size}")
+    return one_sample_t(c - b)
+
+
+@dataclass(frozen=True)
+class Tost:
+    """Two one-sided tests of ``|mean difference| >= margin`` on ``n`` differences: the t
+    statistics against -margin (``t_low``) and +margin (``t_high``), their one-sided p-values
+    and the TOST p-value (the larger). NaN when n < 2."""
+
+    n: int
+    margin: float
+    t_low: float
+    p_low: float
+    t_high: float
+    p_high: float
+    p: float
+
+
+def tost(differences: np.ndarray | list[float], margin: float) -> Tost:
+    """Schuirmann's two one-sided tests for equivalence of the mean of ``differences`` to 0
+    within ``margin`` (> 0). Raises ValueError for a margin that is not a positive number."""
+    if not (math.isfinite(margin) and margin > 0):
+        raise ValueError(f"margin(={margin}) must be a positive finite number")
+    d = np.asarray(differences, dtype=float)
+    low = one_sample_t(d, -margin)
+    high = one_sample_t(d, margin)
+    p = max(low.p_above, high.p_below) if low.n >= 2 else math.nan
+    return Tost(low.n, margin, low.t, low.p_above, high.t, high.p_below, p)
 
 
 def paired_power(n: int, change: float, sd: float, alpha: float = 1.0 - LEVEL) -> float:

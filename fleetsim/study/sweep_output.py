@@ -7,7 +7,8 @@ atomically by :func:`write_sweep`::
       .csv
     front.csv             per cell: the front's objectives, the objective and limited
                           metrics (<metric>_mean, _low, _high), on_front, meets_limits
-    study.json            the design, the cells, the front, the recommendation and the caution
+    study.json            the design, the cells, the front, the recommendation, its place on
+                          the edge of the grid, why, and the caution
     study.md              the text the command prints
     frontier.png          throughput against waste, coloured by worst representation
     heatmaps/*.png        each chosen metric over the two first varied keys (file names are
@@ -36,9 +37,14 @@ from .stats import LEVEL
 from .store import atomic_save, atomic_text, run_key, save_frame
 from .sweep import SweepResult
 from .table import (
+    ABANDONED_SHARE,
+    FAILED_SHARE,
     PARETO_OBJECTIVES,
     SEVERAL_COMMITTED,
     SEVERAL_WASTE,
+    USED_EXAMPLES_PER_HOUR,
+    USED_REPORTS_PER_HOUR,
+    WORST_GROUP,
     WORST_REPRESENTATION,
     metric_columns,
     workload_prefix,
@@ -82,6 +88,19 @@ def _several_lines(result: SweepResult) -> list[str]:
     return lines
 
 
+def _why_lines(result: SweepResult) -> list[str]:
+    """The mechanism behind the recommendation, against the runner-up or the baseline cell."""
+    why = result.why
+    if why is None:
+        return []
+    if why.against is None:
+        return ["", "why: " + " ".join(why.lines)]
+    head = {"runner-up": "the runner-up", "baseline": "the baseline cell (the first value of every axis)",
+            "next best": "the next best cell by the objective"}[why.basis]
+    return ["", f"why ({result.recommendation.label} against {head}, {why.against_label}; cell means over "
+                f"{len(result.seeds)} seeds):", *(f"  {line}" for line in why.lines)]
+
+
 def render_sweep(result: SweepResult) -> str:
     """The plain-text account of a sweep that ``fleetsim sweep`` prints."""
     n_cells, n_seeds = len(result.grid), len(result.seeds)
@@ -113,8 +132,11 @@ def render_sweep(result: SweepResult) -> str:
     lines.append(f"recommendation ({goal}):")
     lines.append(f"  {rec.label}" if rec.cell is not None else "  none")
     lines.extend(f"  - {reason}" for reason in rec.reasons)
+    lines.extend(f"  {'edge of the grid' if edge.vary else 'at the bound of the key'}: {edge.text}"
+                 for edge in result.edges)
     if result.workloads:
         lines.extend(_several_lines(result))
+    lines.extend(_why_lines(result))
     lines.append("")
     lines.append(f"caution: {result.caution}")
     return "\n".join(lines)
@@ -130,6 +152,26 @@ def _json_value(value: Any) -> Any:
     if isinstance(value, (np.bool_,)):
         return bool(value)
     return value
+
+
+def _json_tree(value: Any) -> Any:
+    """``value`` with every number JSON can hold (no NaN, numpy scalars as Python ones)."""
+    if isinstance(value, dict):
+        return {k: _json_tree(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_json_tree(v) for v in value]
+    return _json_value(value)
+
+
+_DERIVED = {
+    USED_REPORTS_PER_HOUR: "participations.used_reports / simulated_hours",
+    USED_EXAMPLES_PER_HOUR: "(waste.examples_processed - waste.examples) / simulated_hours: examples processed "
+                            "by used reports",
+    ABANDONED_SHARE: "rounds.ended_by.selection_timeout / rounds.attempted",
+    FAILED_SHARE: "(rounds.ended_by.report_deadline + rounds.ended_by.unmasking_failed) / rounds.attempted",
+    WORST_GROUP: "min over every group of every grouping (device type, region, data quartile, and type x region "
+                 "when the summary holds it) of min(r, 1/r); _grouping and _group name it",
+}
 
 
 def study_record(result: SweepResult) -> dict[str, Any]:
@@ -167,6 +209,9 @@ def study_record(result: SweepResult) -> dict[str, Any]:
         **several,
         "front": result.front,
         "recommendation": result.recommendation.as_dict(),
+        "edges": [_json_tree(edge.as_dict()) for edge in result.edges],
+        "why": _json_tree(result.why.as_dict()) if result.why is not None else None,
+        "derived": _DERIVED,
         "executor": result.executor,
         "runs_reused": result.reused,
         "wall_s": result.wall_s,

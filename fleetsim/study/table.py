@@ -2,34 +2,27 @@
 
 :func:`flatten_summary` turns the nested ``Result.summary`` into columns named by
 :func:`column_name`: the key path joined with ``_``, every ``-`` in a segment written ``_``
-(``rounds_committed_per_hour``, ``waste_by_cause_idle_ended_compute_s``,
-``bias_by_device_type_budget_phone_report_share``). Two key paths that would give one column
-(device types ``budget-phone`` and ``budget_phone``, say) are an error naming both. Counts by
-cause or outcome that a run did not see are 0, not missing. Two columns are added:
+(``rounds_committed_per_hour``, ``bias_by_device_type_budget_phone_report_share``). Two key
+paths that would give one column (device types ``budget-phone`` and ``budget_phone``) are an
+error naming both. Counts by cause or outcome that a run did not see are 0, not missing.
 
-- ``study_worst_representation``: min over device types of min(r, 1/r), r the type's
-  representation ratio (report share / fleet share). 1 means every type reports in
-  proportion to its fleet share; 0.5 means some type reports at half (or twice) its share.
-  Maximising it maximises the representation ratio farthest from 1, measured on the ratio
-  scale so that half and double count alike. A type with no reports gives 0; NaN when no
-  round committed.
-- ``study_worst_representation_type``: the device type that sets it.
+Derived columns (docs/studies.md defines each): ``study_worst_representation``, min over
+device types of min(r, 1/r) with r the type's representation ratio (report share / fleet
+share), so that half and double count alike (a type with no reports gives 0; NaN when no
+round committed), and ``study_worst_representation_type`` naming the type; then those of
+:data:`DERIVED`, each added when the summary holds the figures it is computed from: used
+reports and used examples per hour (FedAvg weight per hour when the summary holds
+``participations.used_weight``), the shares of rounds abandoned at the selection timeout and
+failed, and the worst representation over every grouping of :data:`GROUPINGS`, naming the
+grouping and the group.
 
 A run of several workloads nests each workload's figures under ``workloads.<name>`` (columns
-``workloads_<name>_<column>``, such as ``workloads_ranking_rounds_committed_per_hour``) and
-adds a ``sharing`` block (``sharing_desk_share_ranking``, ...). The two columns above are then
-computed for each workload under its prefix (``workloads_ranking_study_worst_representation``),
-and the run gets totals over its workloads (:data:`SEVERAL_TOTALS`):
-
-- ``study_rounds_committed_per_hour``: the sum of the workloads' committed rounds per hour;
-- ``study_worst_waste_compute_fraction``: the largest compute waste fraction of any workload
-  (``study_worst_waste_compute_fraction_workload`` names it);
-- ``study_worst_representation``: the smallest of the workloads' worst representations
-  (``study_worst_representation_type`` and ``study_worst_representation_workload`` name the
-  type and the workload).
-
-A total is NaN when any workload's figure is undefined. These three are the front's
-objectives of a study of several workloads (:data:`PARETO_OBJECTIVES_SEVERAL`).
+``workloads_<name>_<column>``) and adds a ``sharing`` block (``sharing_desk_share_ranking``).
+The derived columns are computed for each workload under its prefix, and the run gets totals
+(:data:`SEVERAL_TOTALS`, the front's objectives, :data:`PARETO_OBJECTIVES_SEVERAL`): the sum of
+committed rounds per hour, the largest compute waste fraction and the smallest worst
+representation (with the columns naming the workload and type), and also the summed rates
+and the worst group over the workloads. A total is NaN when any workload's figure is.
 
 The metric names users type (``--maximise``, ``--limit``, ``--detect``, ``--heatmap``) are
 these columns; :func:`resolve_metric` refuses the dotted names and old words of earlier
@@ -45,45 +38,41 @@ from typing import Any, Literal
 
 import pandas as pd
 
-from ..errors import ConfigError
 from ..events import CAUSES, OUTCOMES, WASTE_CAUSES, json_key
+from .derived import (
+    ABANDONED_SHARE,
+    DERIVED,
+    FAILED_SHARE,
+    GROUPINGS,
+    SEVERAL_COMMITTED,
+    SEVERAL_TOTALS,
+    SEVERAL_WASTE,
+    SEVERAL_WASTE_WORKLOAD,
+    USED_EXAMPLES_PER_HOUR,
+    USED_REPORTS_PER_HOUR,
+    WEIGHT_PER_HOUR,
+    WORST_GROUP,
+    WORST_GROUP_GROUPING,
+    WORST_GROUP_NAME,
+    WORST_GROUP_WORKLOAD,
+    WORST_REPRESENTATION,
+    WORST_REPRESENTATION_TYPE,
+    WORST_REPRESENTATION_WORKLOAD,
+    add_derived,
+    column_name,
+    is_several,
+)
+from .derived import add_column as _add
 
 __all__ = [
-    "WORST_REPRESENTATION",
-    "WORST_REPRESENTATION_TYPE",
-    "WORST_REPRESENTATION_WORKLOAD",
-    "SEVERAL_COMMITTED",
-    "SEVERAL_WASTE",
-    "SEVERAL_WASTE_WORKLOAD",
-    "SEVERAL_TOTALS",
-    "PARETO_OBJECTIVES",
-    "PARETO_OBJECTIVES_SEVERAL",
-    "WORKLOADS_PREFIX",
-    "is_several",
-    "workload_prefix",
-    "workload_prefixes",
-    "split_workload",
-    "ZERO_WHEN_ABSENT",
-    "Direction",
-    "column_name",
-    "flatten_summary",
-    "frame_of_rows",
-    "metric_columns",
-    "direction_of",
-    "absent_is_zero",
-    "improvement_sign",
-    "shortfall",
+    "WORST_REPRESENTATION", "WORST_REPRESENTATION_TYPE", "WORST_REPRESENTATION_WORKLOAD", "SEVERAL_COMMITTED",
+    "SEVERAL_WASTE", "SEVERAL_WASTE_WORKLOAD", "SEVERAL_TOTALS", "PARETO_OBJECTIVES", "PARETO_OBJECTIVES_SEVERAL",
+    "WORKLOADS_PREFIX", "USED_REPORTS_PER_HOUR", "USED_EXAMPLES_PER_HOUR", "WEIGHT_PER_HOUR", "ABANDONED_SHARE",
+    "FAILED_SHARE", "WORST_GROUP", "WORST_GROUP_GROUPING", "WORST_GROUP_NAME", "WORST_GROUP_WORKLOAD", "GROUPINGS",
+    "DERIVED", "is_several", "workload_prefix", "workload_prefixes", "split_workload", "ZERO_WHEN_ABSENT",
+    "Direction", "column_name", "flatten_summary", "frame_of_rows", "metric_columns", "direction_of",
+    "absent_is_zero", "improvement_sign", "shortfall",
 ]
-
-WORST_REPRESENTATION = "study_worst_representation"
-WORST_REPRESENTATION_TYPE = "study_worst_representation_type"
-
-WORST_REPRESENTATION_WORKLOAD = "study_worst_representation_workload"
-SEVERAL_COMMITTED = "study_rounds_committed_per_hour"
-SEVERAL_WASTE = "study_worst_waste_compute_fraction"
-SEVERAL_WASTE_WORKLOAD = "study_worst_waste_compute_fraction_workload"
-SEVERAL_TOTALS = (SEVERAL_COMMITTED, SEVERAL_WASTE, WORST_REPRESENTATION)
-"""The totals over workloads a run of several workloads adds (see the module doc)."""
 
 WORKLOADS_PREFIX = "workloads_"
 """Every column of one workload of a run of several starts with this and the workload's name."""
@@ -125,8 +114,15 @@ _DIRECTIONS: tuple[tuple[str, Direction | None], ...] = (
     ("bias_coverage", "higher"),
     (WORST_REPRESENTATION, "higher"),
     (SEVERAL_COMMITTED, "higher"),
+    (USED_REPORTS_PER_HOUR, "higher"),
+    (USED_EXAMPLES_PER_HOUR, "higher"),
+    (WEIGHT_PER_HOUR, "higher"),
+    (WORST_GROUP, "higher"),
+    (ABANDONED_SHARE, "lower"),
+    (FAILED_SHARE, "lower"),
     (SEVERAL_WASTE, "lower"),
     ("bias_*_representation_ratio", "closer-to-1"),
+    ("bias_*_weight_ratio", "closer-to-1"),
     ("bias_*_never_share", "lower"),
     ("bias_gini", "lower"),
     ("rounds_ended_by_*", "lower"),
@@ -143,11 +139,6 @@ _DIRECTIONS: tuple[tuple[str, Direction | None], ...] = (
 )
 
 
-def column_name(path: Sequence[str]) -> str:
-    """The study column of a summary key path: segments joined with ``_``, each ``-`` written ``_``."""
-    return "_".join(json_key(str(segment)) for segment in path)
-
-
 def _walk(path: tuple[str, ...], value: Any, out: dict[str, tuple[tuple[str, ...], Any]]) -> None:
     if isinstance(value, dict):
         for key, inner in value.items():
@@ -159,66 +150,6 @@ def _walk(path: tuple[str, ...], value: Any, out: dict[str, tuple[tuple[str, ...
         _add(out, path, math.nan if value is None and path[0] not in _TEXT else value)
 
 
-def _add(out: dict[str, tuple[tuple[str, ...], Any]], path: tuple[str, ...], value: Any) -> None:
-    column = column_name(path)
-    if column in out:
-        first = ".".join(out[column][0])
-        raise ConfigError([f"{first} and {'.'.join(path)}: both would be the study column {column}; "
-                           "rename one (names that differ only in '-' and '_' cannot both be studied)"])
-    out[column] = (path, value)
-
-
-def is_several(summary: dict[str, Any]) -> bool:
-    """True for the summary of a run of several workloads (a ``sharing`` block and ``workloads``)."""
-    return isinstance(summary.get("workloads"), dict) and isinstance(summary.get("sharing"), dict)
-
-
-def _worst_representation(summary: dict[str, Any]) -> tuple[float, str | None]:
-    """min over device types of min(r, 1/r) and the type that sets it (NaN, None when a ratio
-    is undefined)."""
-    worst, worst_type = math.nan, None
-    types = summary.get("bias", {}).get("by_device_type", {})
-    ratios = {name: v.get("representation_ratio") for name, v in types.items()}
-    if ratios and all(r is not None and math.isfinite(r) for r in ratios.values()):
-        for name, r in ratios.items():
-            closeness = 0.0 if r <= 0 else min(r, 1.0 / r)
-            if worst_type is None or closeness < worst:
-                worst, worst_type = closeness, name
-    return worst, worst_type
-
-
-def _figure(part: dict[str, Any], section: str, key: str) -> float:
-    value = part.get(section, {}).get(key)
-    return float(value) if isinstance(value, (int, float)) and not isinstance(value, bool) else math.nan
-
-
-def _worst_of(figures: dict[str, float], pick: Any) -> str | None:
-    """The workload ``pick`` (max or min) chooses among ``figures``, the earlier of equals; None
-    when any figure is undefined."""
-    if not figures or not all(math.isfinite(v) for v in figures.values()):
-        return None
-    return pick(figures, key=figures.__getitem__)
-
-
-def _add_totals(found: dict[str, tuple[tuple[str, ...], Any]], parts: dict[str, dict[str, Any]]) -> None:
-    """The totals over the workloads of a run of several (:data:`SEVERAL_TOTALS`): the sum of
-    committed rounds per hour, the worst compute waste fraction and the worst representation,
-    each NaN when any workload's figure is undefined."""
-    committed = [_figure(part, "rounds", "committed_per_hour") for part in parts.values()]
-    _add(found, ("study", "rounds_committed_per_hour"), math.fsum(committed))
-    waste = {name: _figure(part, "waste", "compute_fraction") for name, part in parts.items()}
-    name = _worst_of(waste, max)
-    _add(found, ("study", "worst_waste_compute_fraction"), waste[name] if name is not None else math.nan)
-    _add(found, ("study", "worst_waste_compute_fraction_workload"), name)
-    own = {name: found[column_name(("workloads", name, "study", "worst_representation"))][1] for name in parts}
-    name = _worst_of(own, min)
-    kind = found[column_name(("workloads", name, "study", "worst_representation_type"))][1] \
-        if name is not None else None
-    _add(found, ("study", "worst_representation"), own[name] if name is not None else math.nan)
-    _add(found, ("study", "worst_representation_type"), kind)
-    _add(found, ("study", "worst_representation_workload"), name)
-
-
 def flatten_summary(summary: dict[str, Any]) -> dict[str, Any]:
     """One flat row of a run's summary plus the study's derived columns (see module doc).
 
@@ -228,17 +159,7 @@ def flatten_summary(summary: dict[str, Any]) -> dict[str, Any]:
     """
     found: dict[str, tuple[tuple[str, ...], Any]] = {}
     _walk((), summary, found)
-    if not is_several(summary):
-        worst, worst_type = _worst_representation(summary)
-        _add(found, ("study", "worst_representation"), worst)
-        _add(found, ("study", "worst_representation_type"), worst_type)
-        return {column: value for column, (_, value) in found.items()}
-    parts = {str(name): part for name, part in summary["workloads"].items() if isinstance(part, dict)}
-    for name, part in parts.items():
-        worst, worst_type = _worst_representation(part)
-        _add(found, ("workloads", name, "study", "worst_representation"), worst)
-        _add(found, ("workloads", name, "study", "worst_representation_type"), worst_type)
-    _add_totals(found, parts)
+    add_derived(found, summary)
     return {column: value for column, (_, value) in found.items()}
 
 
