@@ -51,3 +51,13 @@ def test_the_round_protocol_benchmark_runs_its_quick_tables():
     # Every table row checked the invariants (no device in two rounds at once, rest after each).
     assert out.count("hold") >= 5 and "BROKEN" not in out
     assert "highlights" in out and "ranking" in out
+
+
+def test_the_telemetry_benchmark_runs_its_quick_steps():
+    # Smoke version of benchmarks/telemetry.py: every step at 2,000 devices x 1 day, untimed.
+    spec = importlib.util.spec_from_file_location("telemetry_bench", ROOT / "benchmarks" / "telemetry.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    figures = module.main(["--quick", "--snapshot-rows", "20000"])
+    assert figures["interval_rows"] > 10_000 and figures["snapshot_rows"] > figures["snapshot_rows_fitted"] > 0
+    assert figures["replay_ratio"] > 0
