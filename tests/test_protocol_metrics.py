@@ -101,8 +101,13 @@ def test_dropout_share_per_round_by_hand():
         "round": [0] * 4 + [1] * 2 + [2] * 5,
         "outcome": _labels(outcomes, OUTCOMES),
         "dropout_cause": _labels(["crash" if o == "dropout" else "none" for o in outcomes], CAUSES),
+        "weight": np.arange(11.0),
     })
-    share = participations_part(labelled, np.zeros(11, bool), np.ones(11))["round_dropout_share"]
+    used = np.zeros(11, bool)
+    used[[1, 2, 4]] = True  # on-time reports of rounds 0 and 1
+    part = participations_part(labelled, used, np.ones(11))
+    assert part["used_reports"] == 3 and part["used_weight"] == 1.0 + 2.0 + 4.0  # their FedAvg weights summed
+    share = part["round_dropout_share"]
     assert math.isclose(share["mean"], (0.25 + 0 + 0.4) / 3, rel_tol=1e-12)
     # Sorted 0, 0.25, 0.4: position 0.9 x 2 = 1.8, so 0.25 + 0.8 x 0.15 = 0.37.
     assert math.isclose(share["p90"], 0.37, rel_tol=1e-12)

@@ -68,13 +68,15 @@ def round_dropout_shares(labelled: pd.DataFrame) -> np.ndarray:
 
 
 def participations_part(labelled: pd.DataFrame, used: np.ndarray, task_s: np.ndarray) -> dict[str, Any]:
-    """``participations``: accepted, used reports, outcomes, dropout causes, task duration
-    percentiles, and the share of each round's accepted devices that dropped out."""
+    """``participations``: accepted, used reports and their FedAvg weight, outcomes, dropout
+    causes, task duration percentiles, and the share of each round's accepted devices that
+    dropped out."""
     drops = labelled[labelled["outcome"] == "dropout"]
     shares = round_dropout_shares(labelled)
     return {
         "accepted": int(len(labelled)),
         "used_reports": int(used.sum()),
+        "used_weight": float(labelled.loc[used, "weight"].sum()),
         "by_outcome": {
             json_key(k): int(v) for k, v in labelled["outcome"].value_counts().reindex(OUTCOMES, fill_value=0).items()
         },

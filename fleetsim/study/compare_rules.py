@@ -50,6 +50,7 @@ COUNT_RATES: tuple[tuple[str, str], ...] = (
     ("rounds_ended_by_*", "round"),
     ("participations_accepted", "hour"),
     ("participations_used_reports", "participation"),
+    ("participations_used_weight", "hour"),
     ("participations_by_outcome_*", "participation"),
     ("participations_dropouts_by_cause_*", "participation"),
     ("waste_by_cause_*_participations", "participation"),

@@ -111,6 +111,7 @@ _DIRECTIONS: tuple[tuple[str, Direction | None], ...] = (
     ("rounds_committed", "higher"),
     ("rounds_committed_per_hour", "higher"),
     ("participations_used_reports", "higher"),
+    ("participations_used_weight", "higher"),
     ("bias_coverage", "higher"),
     (WORST_REPRESENTATION, "higher"),
     (SEVERAL_COMMITTED, "higher"),
