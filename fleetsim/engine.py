@@ -99,8 +99,8 @@ def simulate(
     servers = [RoundServer(job.config, view, policy, log, rngs)
                for job, view, policy, log in zip(jobs, views, policies, logs, strict=True)]
     rule = config.sharing.rule if config.sharing is not None else "priority"
-    desk = Desk(env := simpy.Environment(initial_time=-warmup_s), servers, rule, [job.share for job in jobs],
-                horizon_s, on_progress)
+    env = simpy.Environment(initial_time=-warmup_s)
+    desk = Desk(env, servers, rule, [job.share for job in jobs], horizon_s, on_progress)
 
     census_times: list[float] = []
     census_rows: list[list[tuple[np.ndarray, ...]]] = [[] for _ in jobs]
@@ -182,7 +182,8 @@ def _frames(fleet: Fleet, logs: list[EventLog], census_times: list[float],
     each workload's rows led by a ``workload`` column."""
     frames = []
     for log, rows in zip(logs, census_rows, strict=True):
-        rounds_frame, parts_frame = _after_warmup(log.rounds(), log.participations(fleet.type_names, fleet.region_names))
+        parts = log.participations(fleet.type_names, fleet.region_names)
+        rounds_frame, parts_frame = _after_warmup(log.rounds(), parts)
         frames.append((parts_frame, rounds_frame, _census_frame(fleet, census_times, rows)))
     if len(names) == 1:
         return frames[0]

@@ -12,46 +12,19 @@ import yaml
 
 import fleetsim
 from fleetsim.bridge import bridge_intervals
-from fleetsim.chains import SignalState
 from fleetsim.config import SIGNALS, build_config, example_path, load_config
 from fleetsim.errors import FleetsimError
-from fleetsim.fleet import sample_fleet, stream
 from fleetsim.replay import ReplaySignals, replay_from_frame
 from fleetsim.signals import build_signal_tables
+from fleetsim.telemetry.generate import generate_telemetry
 
 DAY = 86400.0
 
 
-def model_logs(config, seed: int, begin_s: float = -DAY) -> pd.DataFrame:
-    """Interval logs of the config's own fleet: each device's chains followed exactly from
-    ``begin_s`` to the horizon's end (the engine's chain paths), turned into signal
-    on-intervals, each device observed throughout."""
-    fleet = sample_fleet(config, seed)
-    horizon = float(config.horizon.duration)
-    tables = build_signal_tables(config, fleet.type_names, fleet.region_names, horizon + 7200.0, begin_s)
-    n = fleet.size
-    paths = SignalState(tables, fleet.group).paths(np.arange(n), np.full(n, begin_s), np.full(n, horizon),
-                                                   stream(seed, "logs"), [1, 2, 3])
-    covers = tables.covers[fleet.group].T
-    rows = []
-    for i in range(n):
-        flips = paths.flips[:, i, :]
-        ts = np.unique(np.r_[begin_s, flips[np.isfinite(flips)]])
-        chains = paths.state0[:, i][:, None] ^ ((flips[:, None, :] <= ts[None, :, None]).sum(axis=2) % 2 == 1)
-        on = chains[1:] | (chains[0][None, :] & covers[:, i][:, None])
-        for s, name in enumerate(SIGNALS):
-            change = np.flatnonzero(np.r_[True, on[s][1:] != on[s][:-1]])
-            ends = np.r_[ts[change[1:]], horizon]
-            rows += [(i, name, a, b) for a, b, v in zip(ts[change], ends, on[s][change], strict=True) if v]
-    frame = pd.DataFrame(rows, columns=["device", "signal", "start_s", "end_s"])
-    observed = pd.DataFrame({"device": np.arange(n), "signal": "observed", "start_s": begin_s, "end_s": horizon})
-    frame = pd.concat([frame, observed], ignore_index=True)
-    origin = config.horizon.start.timestamp()
-    frame[["start_s", "end_s"]] += origin
-    frame["device_id"] = [f"dev-{i:05d}" for i in frame["device"]]
-    frame["device_type"] = np.asarray(fleet.type_names)[fleet.device_type[frame["device"]]]
-    frame["region"] = np.asarray(fleet.region_names)[fleet.region[frame["device"]]]
-    return frame.drop(columns="device")
+def model_logs(config, seed: int) -> pd.DataFrame:
+    """Interval logs of the config's own fleet over its horizon: the synthetic telemetry's
+    (docs/telemetry.md), which follows each device's chains exactly with the engine's tables."""
+    return generate_telemetry(config, seed).intervals
 
 
 def test_devices_check_in_only_while_their_logs_say_every_signal_is_on():
@@ -65,7 +38,8 @@ def test_devices_check_in_only_while_their_logs_say_every_signal_is_on():
     n = 600
     hour = (np.arange(n) % 24).astype(float)  # device i: idle for one hour from hour i % 24
     rows = [(f"d{i}", "midrange-phone", "west-europe", "observed", 0.0, DAY) for i in range(n)]
-    rows += [(f"d{i}", "midrange-phone", "west-europe", s, 0.0, DAY) for i in range(n) for s in ("charging", "unmetered")]
+    rows += [(f"d{i}", "midrange-phone", "west-europe", s, 0.0, DAY)
+             for i in range(n) for s in ("charging", "unmetered")]
     rows += [(f"d{i}", "midrange-phone", "west-europe", "idle", hour[i] * 3600, hour[i] * 3600 + 3600)
              for i in range(n)]
     frame = pd.DataFrame(rows, columns=["device_id", "device_type", "region", "signal", "start_s", "end_s"])
@@ -87,8 +61,7 @@ def test_devices_check_in_only_while_their_logs_say_every_signal_is_on():
     assert set(parts["dropout_cause"].astype(str)) <= {"none", "idle-ended", "battery-low"}
 
 
-@pytest.mark.parametrize("seed", [0])
-def test_replaying_the_models_own_logs_gives_its_round_statistics(seed):
+def test_replaying_the_models_own_logs_gives_its_round_statistics():
     config = load_config(example_path(), ["fleet.devices=6000", "horizon.duration=1d", "horizon.warmup=0s"])
     replay = replay_from_frame(model_logs(config, seed=11), config.horizon.start.timestamp())
     replayed = [fleetsim.simulate(config, seed=s, replay=replay).summary for s in range(3)]
@@ -112,7 +85,7 @@ def test_replaying_the_models_own_logs_gives_its_round_statistics(seed):
 
 def test_a_horizon_outside_the_logs_and_unknown_names_are_refused():
     config = load_config(example_path(), ["fleet.devices=50", "horizon.duration=2d"])
-    frame = model_logs(load_config(example_path(), ["fleet.devices=50", "horizon.duration=1d"]), seed=2, begin_s=0.0)
+    frame = model_logs(load_config(example_path(), ["fleet.devices=50", "horizon.duration=1d"]), seed=2)
     replay = replay_from_frame(frame, config.horizon.start.timestamp())
     with pytest.raises(FleetsimError, match=r"not within the logs' span .* ends 1d after"):
         fleetsim.simulate(config, seed=0, replay=replay)

@@ -10,7 +10,6 @@ import pandas as pd
 
 from ..analysis import quantiles
 from ..events import OUTCOMES, ROUND_STATUS, json_key
-from .bias import pair_name
 
 __all__ = ["clean", "rounds_part", "round_dropout_shares", "participations_part", "waste_part", "bias_map",
            "pair_map"]

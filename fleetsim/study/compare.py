@@ -42,7 +42,7 @@ import pandas as pd
 from ..errors import ConfigError
 from ..policies import make_policy
 from .compare_overall import Overall, overall
-from .compare_rules import Margin, add_rates, count_rates, default_primary, judged_direction
+from .compare_rules import Margin, add_rates, count_rates, default_primary, judged_direction, number_or_percent
 from .compare_sequential import Schedule
 from .compare_tests import Design
 from .executors import Executor, InProcess, Job
@@ -88,11 +88,7 @@ def parse_detect(text: str) -> Detection:
     Raises ConfigError naming ``--detect``.
     """
     metric, raw = parse_assignment(text, "--detect")
-    try:
-        relative = raw.endswith("%")
-        change = float(raw[:-1]) / 100.0 if relative else float(raw)
-    except ValueError:
-        raise ConfigError([f"--detect {text}: {raw!r} is not a number or a percentage"]) from None
+    change, relative = number_or_percent(text, raw, "--detect")
     if not math.isfinite(change) or change == 0:
         raise ConfigError([f"--detect {text}: the change must be a non-zero finite number"])
     return Detection(metric=metric, change=abs(change), relative=relative)

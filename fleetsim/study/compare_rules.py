@@ -99,17 +99,23 @@ class Margin:
         return size if math.isfinite(size) and size > 0 else math.nan
 
 
+def number_or_percent(text: str, raw: str, option: str) -> tuple[float, bool]:
+    """``raw`` as a number, or as a fraction when written ``N%`` (then ``relative``);
+    ConfigError naming ``option`` and ``text`` otherwise."""
+    relative = raw.endswith("%")
+    try:
+        return (float(raw[:-1]) / 100.0 if relative else float(raw)), relative
+    except ValueError:
+        raise ConfigError([f"{option} {text}: {raw!r} is not a number or a percentage"]) from None
+
+
 def parse_margin(text: str) -> Margin:
     """Read ``METRIC=2%`` (relative to the baseline mean) or ``METRIC=0.5`` (absolute).
 
     Raises ConfigError naming ``--margin`` and the value.
     """
     metric, raw = parse_assignment(text, "--margin")
-    try:
-        relative = raw.endswith("%")
-        value = float(raw[:-1]) / 100.0 if relative else float(raw)
-    except ValueError:
-        raise ConfigError([f"--margin {text}: {raw!r} is not a number or a percentage"]) from None
+    value, relative = number_or_percent(text, raw, "--margin")
     if not (math.isfinite(value) and value > 0):
         raise ConfigError([f"--margin {text}: the margin must be a positive finite number (got {raw})"])
     return Margin(metric=metric, value=value, relative=relative)

@@ -22,6 +22,8 @@ Both functions agree with ``statsmodels.stats.multitest.multipletests`` (methods
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import numpy as np
 
 __all__ = ["holm", "benjamini_hochberg", "HOLM", "BENJAMINI_HOCHBERG"]
@@ -41,24 +43,38 @@ def _finite(p: np.ndarray | list[float]) -> tuple[np.ndarray, np.ndarray]:
     return values, keep
 
 
+def _adjusted(p: np.ndarray | list[float], step: Callable[[np.ndarray], np.ndarray]) -> np.ndarray:
+    """``step`` (sorted finite p-values -> their adjusted values) applied to ``p`` in its own
+    order, NaN where ``p`` is not finite."""
+    values, keep = _finite(p)
+    out = np.full(values.shape, np.nan)
+    tested = values[keep]
+    if tested.size == 0:
+        return out
+    order = np.argsort(tested, kind="stable")
+    result = np.empty(tested.size)
+    result[order] = step(tested[order])
+    out[keep] = result
+    return out
+
+
+def _holm_step(ordered: np.ndarray) -> np.ndarray:
+    m = ordered.size
+    return np.minimum(1.0, np.maximum.accumulate((m - np.arange(m)) * ordered))
+
+
+def _bh_step(ordered: np.ndarray) -> np.ndarray:
+    m = ordered.size
+    scaled = m * ordered / np.arange(1, m + 1)
+    return np.minimum(1.0, np.minimum.accumulate(scaled[::-1])[::-1])
+
+
 def holm(p: np.ndarray | list[float]) -> np.ndarray:
     """Holm-adjusted p-values of ``p`` (NaN where ``p`` is not finite).
 
     Raises ValueError for a p-value outside [0, 1] or a non-flat array.
     """
-    values, keep = _finite(p)
-    out = np.full(values.shape, np.nan)
-    tested = values[keep]
-    m = tested.size
-    if m == 0:
-        return out
-    order = np.argsort(tested, kind="stable")
-    scaled = (m - np.arange(m)) * tested[order]
-    adjusted = np.minimum(1.0, np.maximum.accumulate(scaled))
-    result = np.empty(m)
-    result[order] = adjusted
-    out[keep] = result
-    return out
+    return _adjusted(p, _holm_step)
 
 
 def benjamini_hochberg(p: np.ndarray | list[float]) -> np.ndarray:
@@ -66,16 +82,4 @@ def benjamini_hochberg(p: np.ndarray | list[float]) -> np.ndarray:
 
     Raises ValueError for a p-value outside [0, 1] or a non-flat array.
     """
-    values, keep = _finite(p)
-    out = np.full(values.shape, np.nan)
-    tested = values[keep]
-    m = tested.size
-    if m == 0:
-        return out
-    order = np.argsort(tested, kind="stable")
-    scaled = m * tested[order] / np.arange(1, m + 1)
-    adjusted = np.minimum(1.0, np.minimum.accumulate(scaled[::-1])[::-1])
-    result = np.empty(m)
-    result[order] = adjusted
-    out[keep] = result
-    return out
+    return _adjusted(p, _bh_step)

@@ -112,18 +112,15 @@ def _draw_limits(ax: Any, bar: Any, result: Any, x_metric: str, y_metric: str, c
     """Each limit on a plotted figure: a dashed line at the bound, the infeasible side shaded."""
     for lim in result.recommendation.limits:
         label = f"limit {lim}"
-        if lim.metric == x_metric:
-            left, right = ax.get_xlim()
-            ax.axvline(lim.value, color="crimson", linestyle="--", linewidth=1.0, label=label)
-            ax.axvspan(*((left, lim.value) if lim.operator == ">=" else (lim.value, right)),
-                       color="crimson", alpha=0.08, zorder=0)
-            ax.set_xlim(left, right)
-        elif lim.metric == y_metric:
-            bottom, top = ax.get_ylim()
-            ax.axhline(lim.value, color="crimson", linestyle="--", linewidth=1.0, label=label)
-            ax.axhspan(*((bottom, lim.value) if lim.operator == ">=" else (lim.value, top)),
-                       color="crimson", alpha=0.08, zorder=0)
-            ax.set_ylim(bottom, top)
+        axes = {x_metric: (ax.get_xlim, ax.axvline, ax.axvspan, ax.set_xlim),
+                y_metric: (ax.get_ylim, ax.axhline, ax.axhspan, ax.set_ylim)}
+        if lim.metric in (x_metric, y_metric):
+            get_lim, line, span, set_lim = axes[lim.metric]
+            low, high = get_lim()
+            line(lim.value, color="crimson", linestyle="--", linewidth=1.0, label=label)
+            span(*((low, lim.value) if lim.operator == ">=" else (lim.value, high)), color="crimson", alpha=0.08,
+                 zorder=0)
+            set_lim(low, high)
         elif lim.metric == colour_metric:
             bar.ax.axhline(lim.value, color="crimson", linestyle="--", linewidth=1.5)
             low, high = bar.ax.get_ylim()
