@@ -65,7 +65,8 @@ def _sharing_lines(summary: dict[str, Any]) -> list[str]:
         rule = "priority " + " > ".join(names)
     desk = ", ".join(f"{name} {_pct(sharing['desk_share'][name])}" for name in names)
     return [
-        f"workloads: {len(names)} sharing check-ins by {rule}; selections held the desk: {desk} of the time",
+        f"workloads: {len(names)} sharing check-ins by {rule}; the server (one selection at a time) was "
+        f"selecting for {desk} of the time",
         f"  {_pct(sharing['reported_for_several'])} of the {sharing['reporting_devices']:,} reporting devices "
         "reported for more than one workload",
     ]
