@@ -47,7 +47,7 @@ class SignalState:
     def __init__(self, tables: SignalTables, group: np.ndarray):
         n = group.size
         self.tables = tables
-        self.group = group
+        self.group = np.asarray(group, dtype=np.int64)  # as the tables' line arithmetic takes it (no cast per look)
         self.t_last = np.full((len(CHAINS), n), tables.origin_s)
         # At the grid origin each chain starts from the step's on-probability.
         self.q_last = np.empty((len(CHAINS), n))
@@ -55,29 +55,29 @@ class SignalState:
             self.q_last[c] = tables.p[group, c, 0]
 
     def _probability(self, devices: np.ndarray, chain: int, t: np.ndarray) -> np.ndarray:
-        t_from = self.t_last[chain, devices]
+        t_from = self.t_last[chain][devices]  # a row, then a 1-D gather: cheaper than a 2-D one
         # A look back in time (a measurement behind the run) reuses the last state.
         t_eval = np.maximum(t, t_from)
-        return self.tables.on_probability(self.group[devices], chain, t_from, self.q_last[chain, devices], t_eval)
+        return self.tables.on_probability(self.group[devices], chain, t_from, self.q_last[chain][devices], t_eval)
 
     def observe(self, devices: np.ndarray, chain: int, t: np.ndarray, rng: np.random.Generator) -> np.ndarray:
         """Sample whether ``chain`` is on for ``devices`` at times ``t``; record it."""
         on = rng.random(devices.size) < self._probability(devices, chain, t)
-        self.t_last[chain, devices] = t
-        self.q_last[chain, devices] = on
+        self.t_last[chain][devices] = t
+        self.q_last[chain][devices] = on
         return on
 
     def _probabilities(self, devices: np.ndarray, chains: list[int], t: np.ndarray) -> np.ndarray:
         """[len(chains), n] on-probabilities at ``t`` of several chains, in one pass."""
-        rows = np.asarray(chains, dtype=np.int64)[:, None]
-        t_from = self.t_last[rows, devices[None, :]]
-        t_eval = np.maximum(t[None, :], t_from)
-        shape = t_from.shape
-        group = np.broadcast_to(self.group[devices][None, :], shape).reshape(-1)
-        chain = np.broadcast_to(rows, shape).reshape(-1)
-        q_from = self.q_last[rows, devices[None, :]].reshape(-1)
-        q = self.tables.on_probability(group, chain, t_from.reshape(-1), q_from, t_eval.reshape(-1))
-        return q.reshape(shape)
+        m, n = len(chains), devices.size
+        # Chain by chain: row gathers laid end to end (the same values as a 2-D gather, cheaper).
+        t_from = np.concatenate([self.t_last[c][devices] for c in chains])
+        q_from = np.concatenate([self.q_last[c][devices] for c in chains])
+        t_eval = np.maximum(np.tile(t, m), t_from)
+        group = np.tile(self.group[devices], m)
+        chain = np.repeat(np.asarray(chains, dtype=np.int64), n)
+        q = self.tables.on_probability(group, chain, t_from, q_from, t_eval)
+        return q.reshape(m, n)
 
     def observe_chains(self, devices: np.ndarray, chains: list[int], t: np.ndarray,
                        rng: np.random.Generator) -> np.ndarray:
@@ -85,9 +85,9 @@ class SignalState:
         if not chains:
             return np.zeros((0, devices.size), dtype=bool)
         on = rng.random((len(chains), devices.size)) < self._probabilities(devices, chains, t)
-        rows = np.asarray(chains, dtype=np.int64)[:, None]
-        self.t_last[rows, devices[None, :]] = t[None, :]
-        self.q_last[rows, devices[None, :]] = on
+        for i, c in enumerate(chains):
+            self.t_last[c][devices] = t
+            self.q_last[c][devices] = on[i]
         return on
 
     def probabilities(self, devices: np.ndarray, chains: list[int], t: np.ndarray) -> np.ndarray:
@@ -100,8 +100,8 @@ class SignalState:
 
     def record(self, devices: np.ndarray, chain: int, t: np.ndarray, on: np.ndarray) -> None:
         """Record known states (e.g. a chain's state when a task ended)."""
-        self.t_last[chain, devices] = t
-        self.q_last[chain, devices] = on
+        self.t_last[chain][devices] = t
+        self.q_last[chain][devices] = on
 
     def signals_on(self, devices: np.ndarray, chains: np.ndarray) -> np.ndarray:
         """[S, n] whether each signal is on, from the chains' states [C, n]."""
@@ -127,30 +127,31 @@ class SignalState:
         t0 = np.asarray(t0, dtype=float)
         for c in np.flatnonzero(followed):
             # A chain seen at t0 (as at a check-in) is in its recorded state; the others are drawn.
-            state0[c] = self.q_last[c, devices] > 0.5
-            unseen = np.flatnonzero(self.t_last[c, devices] != t0)
+            state0[c] = self.q_last[c][devices] > 0.5
+            unseen = np.flatnonzero(self.t_last[c][devices] != t0)
             if unseen.size:
                 q = self._probability(devices[unseen], int(c), t0[unseen])
                 state0[c, unseen] = rng.random(unseen.size) < q
         flips: list[np.ndarray] = []
-        state = state0.copy()
-        now = np.broadcast_to(t0, (len(CHAINS), n)).copy()
-        chain_index = np.broadcast_to(np.arange(len(CHAINS))[:, None], (len(CHAINS), n))
-        groups = np.broadcast_to(group[None, :], (len(CHAINS), n))
-        stops = np.broadcast_to(t_stop[None, :], (len(CHAINS), n))
-        active = np.repeat(followed[:, None], n, axis=1)
+        # Flat [C * n] arrays, chain by chain (the layout of state0.reshape(-1)), made once.
+        state = state0.reshape(-1).copy()
+        now = np.tile(t0, len(CHAINS))
+        chain_index = np.repeat(np.arange(len(CHAINS)), n)
+        groups = np.tile(group, len(CHAINS))
+        stops = np.tile(np.asarray(t_stop, dtype=float), len(CHAINS))
+        active = np.repeat(followed, n)
         while active.any():
-            idx = np.flatnonzero(active.reshape(-1))
+            idx = np.flatnonzero(active)
             e = rng.exponential(1.0, size=idx.size)
-            when = tables.next_flip(groups.reshape(-1)[idx], chain_index.reshape(-1)[idx], now.reshape(-1)[idx],
-                                    state.reshape(-1)[idx], e)
+            when = tables.next_flip(groups[idx], chain_index[idx], now[idx], state[idx], e)
             step = np.full(len(CHAINS) * n, np.inf)
-            flipped = when <= stops.reshape(-1)[idx]
-            step[idx[flipped]] = when[flipped]
+            flipped = when <= stops[idx]
+            moved = idx[flipped]
+            step[moved] = when[flipped]
             flips.append(step.reshape(len(CHAINS), n))
-            now.reshape(-1)[idx[flipped]] = when[flipped]
-            state.reshape(-1)[idx[flipped]] ^= True
-            active.reshape(-1)[idx[~flipped]] = False
+            now[moved] = when[flipped]
+            state[moved] ^= True
+            active[idx[~flipped]] = False
         stacked = np.stack(flips, axis=2) if flips else np.full((len(CHAINS), n, 0), np.inf)
         return Paths(t0=np.asarray(t0, dtype=float), state0=state0, flips=stacked, t_stop=np.asarray(t_stop),
                      followed=followed)

@@ -217,7 +217,9 @@ def _after_warmup(rounds: pd.DataFrame, parts: pd.DataFrame) -> tuple[pd.DataFra
         return rounds, parts
     first = int(rounds["round"].to_numpy()[kept][0]) if kept.any() else int(rounds["round"].max()) + 1
     rounds = rounds[kept].reset_index(drop=True)
-    parts = parts[parts["round"].to_numpy() >= first].reset_index(drop=True)
+    in_run = parts["round"].to_numpy() >= first
+    if not in_run.all():  # the server logs no warm-up participations; a log that holds some is cut
+        parts = parts[in_run].reset_index(drop=True)
     rounds["round"] -= first
     parts["round"] -= first
     return rounds, parts

@@ -157,7 +157,7 @@ class EventLog:
 
     def __init__(self) -> None:
         self._parts: dict[str, list[np.ndarray]] = defaultdict(list)
-        self._rounds: dict[str, list[np.ndarray]] = defaultdict(list)
+        self._rounds: list[tuple[Any, ...]] = []  # one tuple of values per round, in ROUND_COLUMNS order
 
     def add_participations(self, **columns: np.ndarray) -> None:
         missing = set(PARTICIPATION_COLUMNS) - set(columns)
@@ -167,16 +167,18 @@ class EventLog:
             self._parts[key].append(np.asarray(columns[key], dtype=dtype))
 
     def add_round(self, **values: float) -> None:
-        for key, dtype in ROUND_COLUMNS.items():
-            self._rounds[key].append(np.asarray([values[key]], dtype=dtype))
+        self._rounds.append(tuple(values[key] for key in ROUND_COLUMNS))
 
     @staticmethod
     def _frame(chunks: dict[str, list[np.ndarray]], schema: Mapping[str, Any]) -> pd.DataFrame:
+        # The joined columns are new arrays no one else holds: the frame takes them as they are
+        # (no copy into consolidated blocks; the values, and so every figure, are the same).
         return pd.DataFrame(
             {
                 key: np.concatenate(chunks[key]) if chunks[key] else np.empty(0, dtype=dtype)
                 for key, dtype in schema.items()
-            }
+            },
+            copy=False,
         )
 
     def participations(self, type_names: tuple[str, ...], region_names: tuple[str, ...]) -> pd.DataFrame:
@@ -197,6 +199,8 @@ class EventLog:
 
     def rounds(self) -> pd.DataFrame:
         """One row per round; ``status`` as a label (Categorical of ROUND_STATUS)."""
-        frame = self._frame(self._rounds, ROUND_COLUMNS)
+        columns = list(zip(*self._rounds, strict=True)) if self._rounds else [() for _ in ROUND_COLUMNS]
+        frame = pd.DataFrame({key: np.array(values, dtype=dtype)
+                              for (key, dtype), values in zip(ROUND_COLUMNS.items(), columns, strict=True)}, copy=False)
         frame["status"] = pd.Categorical.from_codes(frame["status"].to_numpy(), list(ROUND_STATUS))
         return frame

@@ -71,6 +71,7 @@ class FleetRuntime:
         fleet = self.fleet
         self.config = config
         self.capable = fleet.memory_bytes >= config.workload.memory_needed
+        self.all_capable = bool(self.capable.all())  # the common case: no tick is refused for memory
         self.required = [SIGNALS.index(s) for s in config.workload.requires]
         self.min_battery = config.workload.min_battery
         # Each device's task time without disruptions (what a policy may rank by), s.
@@ -111,16 +112,19 @@ class FleetRuntime:
             k = int(np.floor(a / period))
             order, phases = index(k)
             i0 = np.searchsorted(phases, lo, side="left")
+            # Each tick's offset from a, (phase - lo) mod period, without the float remainder: it
+            # is phase - lo for the phases from lo up (in [0, period)) and phase - lo + period for
+            # the wrapped ones (in (-period, 0)), the remainder's own values bit for bit.
             if hi <= period:
                 i1 = np.searchsorted(phases, hi, side="left")
-                picked, phase = order[i0:i1], phases[i0:i1]
+                picked, offset = order[i0:i1], phases[i0:i1] - lo
             else:
                 order_next, phases_next = index(k + 1)  # ticks past the period's end: its next tick
                 i1 = np.searchsorted(phases_next, hi - period, side="left")
                 picked = np.concatenate([order[i0:], order_next[:i1]])
-                phase = np.concatenate([phases[i0:], phases_next[:i1]])
+                offset = np.concatenate([phases[i0:] - lo, (phases_next[:i1] - lo) + period])
             devices.append(picked)
-            times.append(a + (phase - lo) % period)
+            times.append(a + offset)
             a = b
         if len(devices) == 1:
             return devices[0], times[0]
@@ -152,7 +156,9 @@ class FleetRuntime:
             devices, times = self._ticks(start, end, self._paced_index(self.stretch))
         else:
             devices, times = self.ticks(start, end)
-        keep = self.capable[devices] & (self.free_at[devices] <= times)
+        keep = self.free_at[devices] <= times
+        if not self.all_capable:
+            keep &= self.capable[devices]
         return devices[keep], times[keep]
 
     def eligible(self, devices: np.ndarray, times: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

@@ -142,6 +142,9 @@ class Selector:
                 f"(need at most {needed} distinct positions in 0..{devices.size - 1})"
             )
         picked = devices[chosen]
+        ranked = np.sort(picked)
+        if not (ranked[1:] == ranked[:-1]).any() and not in_round[picked].any():
+            return  # the common case, checked without counting
         unique, counts = np.unique(picked, return_counts=True)
         twice = unique[counts > 1]
         held = picked[in_round[picked]]

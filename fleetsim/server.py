@@ -133,15 +133,16 @@ class RoundServer:
         unmasked = secure is None or responses >= secure.needed(n)
         status = round_status(lost, enough, n_reports, rounds.required_reports, unmasked)
         used = on_time & (status == "committed")
-        self._log_participations(
-            index, cohort, end_rel, unmask_from,
-            accepted_s=accept_s,
-            outcome=outcome_codes(on_time, late, is_drop),
-            dropout_cause=cause,
-            dropout_phase=phase,
-            waste_cause=waste_codes(status, late, is_drop, cause, used),
-            used=used,
-        )
+        if opened >= 0:  # a warm-up round's participations are dropped from the run (engine._after_warmup)
+            self._log_participations(
+                index, cohort, end_rel, unmask_from,
+                accepted_s=accept_s,
+                outcome=outcome_codes(on_time, late, is_drop),
+                dropout_cause=cause,
+                dropout_phase=phase,
+                waste_cause=waste_codes(status, late, is_drop, cause, used),
+                used=used,
+            )
         self.log.add_round(
             round=index,
             opened_s=opened,

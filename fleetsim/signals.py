@@ -31,7 +31,7 @@ Each device's looks and paths are kept by :mod:`fleetsim.chains`.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
 from zoneinfo import ZoneInfo
 
@@ -160,6 +160,29 @@ class SignalTables:
     # j * line_gap makes one ascending array of them all, searched once for every target.
     search_key: np.ndarray
     line_gap: float
+    # Derived in __post_init__ (below), for the hot lookups.
+    _grid: np.ndarray = field(init=False, repr=False, compare=False)
+    _p_pad: np.ndarray = field(init=False, repr=False, compare=False)
+    _neg_rate_pad: np.ndarray = field(init=False, repr=False, compare=False)
+    _leave_pad: np.ndarray = field(init=False, repr=False, compare=False)
+    _cum_end: np.ndarray = field(init=False, repr=False, compare=False)
+
+    def __post_init__(self) -> None:
+        # Lookups the hot paths share, each the value the formula it replaces gives bit for bit:
+        # the start of grid point k (origin_s + k * step_s) and the negated rates (-(r x) = (-r) x).
+        # p and the negated rates are also kept padded to K + 1 steps a line, the layout of the
+        # prefix maps, so that one index reads all four (the padding is never read).
+        grid = self.origin_s + np.arange(self.p.shape[2] + 1) * self.step_s
+        object.__setattr__(self, "_grid", grid)
+
+        def padded(table: np.ndarray) -> np.ndarray:
+            return np.concatenate([table, table[:, :, -1:]], axis=2).reshape(-1)
+
+        object.__setattr__(self, "_p_pad", padded(self.p))
+        object.__setattr__(self, "_neg_rate_pad", padded(-self.rate))
+        leave = self.leave_rate
+        object.__setattr__(self, "_leave_pad", np.concatenate([leave, leave[..., -1:]], axis=3).reshape(-1))
+        object.__setattr__(self, "_cum_end", self.cum_hazard[..., -1].reshape(-1))  # each line's total
 
     @property
     def steps(self) -> int:
@@ -171,7 +194,7 @@ class SignalTables:
         return np.minimum(k, self.steps - 1, out=k)
 
     def _line(self, group: np.ndarray, chain: np.ndarray | int) -> np.ndarray:
-        return group.astype(np.int64) * self.p.shape[1] + chain
+        return group.astype(np.int64, copy=False) * self.p.shape[1] + chain
 
     def on_probability(
         self, group: np.ndarray, chain: np.ndarray | int, t_from: np.ndarray, q_from: np.ndarray, t_to: np.ndarray
@@ -179,29 +202,36 @@ class SignalTables:
         """Probability the chain is on at ``t_to`` given on-probability ``q_from`` at ``t_from``."""
         if not t_to.size:
             return np.empty(0)
-        steps = self.steps
         k0 = self.step_of(t_from)
         k1 = self.step_of(t_to)
-        line = self._line(group, chain)
-        row = line * steps
-        i0, i1 = row + k0, row + k1
-        p_flat, rate_flat = self.p.reshape(-1), self.rate.reshape(-1)
-        p0, r0 = p_flat[i0], rate_flat[i0]
+        base = self._line(group, chain) * (self.steps + 1)  # line start in the padded tables and prefix maps
+        i0 = base + k0
+        p_pad, neg_rate, grid = self._p_pad, self._neg_rate_pad, self._grid
+        p0, nr0 = p_pad[i0], neg_rate[i0]
         # To the end of step k0 (or to t_to if it lies in the same step).
-        end0 = np.minimum(self.origin_s + (k0 + 1) * self.step_s, t_to)
-        q = p0 + (q_from - p0) * np.exp(-r0 * np.maximum(end0 - t_from, 0.0))
-        later = np.flatnonzero(k1 > k0)
-        if later.size:
-            # Across whole steps by the prefix map, then into step k1.
-            prefix_row = line[later] * (steps + 1)
-            j0 = prefix_row + k0[later] + 1
-            j1 = prefix_row + k1[later]
+        end0 = np.minimum(grid[1:][k0], t_to)
+        q = p0 + (q_from - p0) * np.exp(nr0 * np.maximum(end0 - t_from, 0.0))
+        later = k1 > k0
+        n_later = int(np.count_nonzero(later))
+        if n_later:
+            # Across whole steps by the prefix map, then into step k1. When most looks cross a
+            # step boundary every element is carried (the same float operations, element by
+            # element, as on the subset; a look within its step crosses no step: j0 = j1) and
+            # the others are kept by a mask: fewer gathers.
+            some = n_later * 2 < t_to.size
+            pick = np.flatnonzero(later) if some else slice(None)
+            ks1 = k1[pick] if some else k1
+            j1 = (base[pick] if some else base) + ks1
+            j0 = i0[pick] + 1 if some else np.minimum(i0 + 1, j1)
             a_flat, log_flat = self.prefix_a.reshape(-1), self.prefix_log.reshape(-1)
-            decay = np.exp(-(log_flat[j1] - log_flat[j0]))
-            ql = a_flat[j1] + decay * (q[later] - a_flat[j0])
-            p1, r1 = p_flat[i1[later]], rate_flat[i1[later]]
-            start1 = self.origin_s + k1[later] * self.step_s
-            q[later] = p1 + (ql - p1) * np.exp(-r1 * np.maximum(t_to[later] - start1, 0.0))
+            decay = np.exp(log_flat[j0] - log_flat[j1])  # exactly -(log[j1] - log[j0])
+            ql = a_flat[j1] + decay * (q[pick] - a_flat[j0])
+            p1, nr1 = p_pad[j1], neg_rate[j1]
+            q_later = p1 + (ql - p1) * np.exp(nr1 * np.maximum(t_to[pick] - grid[ks1], 0.0))
+            if some:
+                q[pick] = q_later
+            else:
+                q = np.where(later, q_later, q)
         np.maximum(q, 0.0, out=q)
         return np.minimum(q, 1.0, out=q)
 
@@ -217,20 +247,24 @@ class SignalTables:
         the first t' with the integral of its leaving rate from t to t' equal to ``e`` (unit
         exponential draws), the rate piecewise constant per step."""
         steps = self.steps
-        # Lines of the leaving-rate and cumulative tables: [from off: G x C, from on: G x C].
+        # Lines of the leaving-rate and cumulative tables: [from off: G x C, from on: G x C];
+        # the leaving rates padded to K + 1 a line, so one index reads both.
         line = group.astype(np.int64) * self.p.shape[1] + chain + on * (self.p.shape[0] * self.p.shape[1])
         cum = self.cum_hazard.reshape(-1)
-        leave = self.leave_rate.reshape(-1)
+        leave = self._leave_pad
         k0 = self.step_of(t)
         row = line * (steps + 1)
-        target = cum[row + k0] + leave[line * steps + k0] * (t - (self.origin_s + k0 * self.step_s)) + e
+        grid = self._grid  # grid[k] is origin_s + k * step_s
+        at = row + k0
+        target = cum[at] + leave[at] * (t - grid[k0]) + e
         # One binary search over every line at once (see `search_key`).
         k = np.searchsorted(self.search_key, target + line * self.line_gap, side="right") - 1 - row
         np.clip(k, 0, steps - 1, out=k)
+        at = row + k
         with np.errstate(divide="ignore", invalid="ignore"):
-            step_in = (target - cum[row + k]) / leave[line * steps + k]
-        when = self.origin_s + k * self.step_s + np.clip(step_in, 0.0, self.step_s)
-        return np.where(target < cum[row + steps], np.maximum(when, t), np.inf)
+            step_in = (target - cum[at]) / leave[at]
+        when = grid[k] + np.clip(step_in, 0.0, self.step_s)
+        return np.where(target < self._cum_end[line], np.maximum(when, t), np.inf)
 
     def survival(self, group: np.ndarray, chain: np.ndarray | int, t0: np.ndarray, t1: np.ndarray,
                  on: np.ndarray) -> np.ndarray:
