@@ -13,9 +13,19 @@ import typer
 
 from ..config import config_schema, example_path
 from ..errors import ConfigError, FleetsimError
-from .console import FileArg, SetOpt, fail, progress_bar, read_config, seed_option
+from .console import MAX_SEED, FileArg, OptionValueError, SetOpt, fail, progress_bar, read_config, seed_option
 
 __all__ = ["run", "check", "schema", "policies"]
+
+MAX_SEEDS = 10_000
+"""The most seeds one ``fleetsim run --seeds`` runs."""
+
+
+def _seeds_in_range(value: int | None) -> int | None:
+    """Option callback: --seeds is a whole number from 2 to :data:`MAX_SEEDS` (raises OptionValueError)."""
+    if value is not None and not 2 <= value <= MAX_SEEDS:
+        raise OptionValueError(f"expected a whole number of seeds from 2 to {MAX_SEEDS:,} (got {value})")
+    return value
 
 
 def run(
@@ -25,6 +35,11 @@ def run(
         help="Output folder: a new or empty one, or an earlier fleetsim output with --force.",
     ),
     seed: int = seed_option(0, "--seed", "Seed of every random stream."),
+    seeds: int | None = typer.Option(
+        None, "--seeds", callback=_seeds_in_range,
+        help="Run the same settings under N seeds (N >= 2; --seed S gives S to S+N-1): --out then holds "
+             "seeds/SEED/ (a run folder each) and a combined summary.json with between-seed intervals.",
+    ),
     days: float | None = typer.Option(None, "--days", help="Horizon length in days (overrides the file)."),
     devices: int | None = typer.Option(None, "--devices", help="Fleet size (overrides the file)."),
     overrides: list[str] = SetOpt,
@@ -43,6 +58,9 @@ def run(
     from ..engine import simulate
     from ..output import check_target, write_run
 
+    if seeds is not None:
+        _run_seeds(file, out, seed, seeds, days, devices, overrides, report, replay, force)
+        return
     try:
         config = read_config(file, overrides, devices, days)
         source = file if file is not None else example_path()
@@ -66,6 +84,74 @@ def run(
     several = ", workloads/ (one run folder per workload)" if len(result.workloads) > 1 else ""
     typer.echo(f"wrote {out}/summary.json, events.parquet, tables/" + several
                + (", report.html, report.md" if report else ""))
+
+
+def _run_seeds(file: Path | None, out: Path, first: int, count: int, days: float | None, devices: int | None,
+               overrides: list[str], report: bool, replay: list[Path], force: bool) -> None:
+    """``fleetsim run --seeds``: the settings under seeds first .. first + count - 1, written as a
+    multi-seed run folder (:mod:`fleetsim.output.seeds`); progress over all seeds on a terminal."""
+    from ..engine import simulate
+    from ..output import check_target
+    from ..output.run import fill_run
+    from ..output.seeds import SEEDS, write_seeds
+
+    try:
+        if first + count - 1 > MAX_SEED:
+            raise FleetsimError(f"--seeds: seeds {first} to {first + count - 1} pass the largest seed, 2**63 - 1; "
+                                "choose a smaller --seed or fewer seeds")
+        config = read_config(file, overrides, devices, days)
+        source = file if file is not None else example_path()
+        if len(config.jobs) > 1:
+            raise FleetsimError(f"--seeds: {source}: a fleet file with several workloads is not run under several "
+                                "seeds; run each seed with --seed")
+        label = f"--out {out}"
+        check_target(out, SEEDS, force, [source, *replay], label)  # refuse before simulating, not after
+        horizon = float(config.horizon.duration)
+
+        with progress_bar(count * horizon, f"simulating {count} seeds") as tick:
+            def fill_seed(seed: int, folder: Path) -> None:
+                settings, logs = config, None
+                if replay:
+                    settings, logs = _replay_logs(file, overrides, days, replay, seed, config)
+                done = (seed - first) * horizon
+                result = simulate(settings, seed=seed, on_progress=lambda t: tick(done + t), replay=logs)
+                result.source = str(source.resolve())
+                fill_run(result, folder)
+
+            write_seeds(out, range(first, first + count), fill_seed, force=force, inputs=[source], label=label,
+                        notice=lambda line: typer.echo(line, err=True))
+        if report:
+            from ..report import write_report
+
+            write_report(out)
+        combined = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    except FleetsimError as exc:
+        fail(exc)
+    typer.echo(_seeds_brief(combined))
+    typer.echo(f"wrote {out}/summary.json (between-seed intervals), {SEEDS}/{first}/ to {SEEDS}/{first + count - 1}/ "
+               "(one run folder per seed)" + (", report.html, report.md" if report else ""))
+
+
+_BRIEF = (("rounds.committed_per_hour", "committed rounds per hour", "{:.3g}"),
+          ("waste.compute_fraction", "share of device compute wasted", "{:.1%}"),
+          ("bias.coverage", "devices that ever reported", "{:.1%}"))
+
+
+def _seeds_brief(combined: dict) -> str:
+    """A few headline figures of a multi-seed run with their between-seed intervals, and the caution."""
+    figures = {tuple(f["path"]): f for f in combined["figures"]}
+    seeds = combined["seeds"]
+    lines = [f"{combined['scenario']}", f"  seeds {seeds[0]} to {seeds[-1]}, config {combined['config_hash']}, "
+             f"{combined['devices']:,} devices; 95% Student t intervals between seeds"]
+    for key, words, form in _BRIEF:
+        f = figures.get(tuple(key.split(".")))
+        if f is None or f["mean"] is None:
+            lines.append(f"{words}: n/a")
+            continue
+        spread = f" ({form.format(f['low'])} to {form.format(f['high'])})" if f["low"] is not None else ""
+        lines.append(f"{words}: {form.format(f['mean'])}{spread}, {f['seeds']} seeds")
+    lines.append(f"caution: {combined['caution']}")
+    return "\n".join(lines)
 
 
 def _replay_logs(file: Path | None, overrides: list[str], days: float | None, paths: list[Path], seed: int,

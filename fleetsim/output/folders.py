@@ -27,6 +27,7 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import FleetsimError
+from .contents import MARKER, foreign, read_marker
 from .files import _reason, atomic_text
 
 __all__ = [
@@ -34,19 +35,18 @@ __all__ = [
     "read_marker",
 ]
 
-MARKER = ".fleetsim-output"
-"""Name of the marker file in every folder fleetsim writes: JSON with kind, version and time."""
 
-KINDS = ("run", "sweep", "compare", "study", "telemetry")
+KINDS = ("run", "sweep", "compare", "study", "telemetry", "seeds")
 """Kinds of output folder; ``study`` is a study folder not yet claimed by a sweep or comparison;
-``telemetry`` a folder of synthetic telemetry (``fleetsim telemetry``)."""
+``telemetry`` a folder of synthetic telemetry (``fleetsim telemetry``); ``seeds`` a multi-seed
+run folder (``fleetsim run --seeds``, :mod:`fleetsim.output.seeds`) or a report over several runs."""
 
 # The marker kinds a folder may already carry for a write of each kind to go ahead without
 # force: a study resumes in its own folder, a run never replaces anything unasked.
 _RESUMES = {"run": set(), "sweep": {"sweep", "study"}, "compare": {"compare", "study"},
-            "study": {"sweep", "compare", "study"}, "telemetry": set()}
+            "study": {"sweep", "compare", "study"}, "telemetry": set(), "seeds": set()}
 _KIND_WORDS = {"run": "run", "sweep": "sweep", "compare": "comparison", "study": "study",
-               "telemetry": "telemetry folder"}
+               "telemetry": "telemetry folder", "seeds": "multi-seed run"}
 _HOLDER = "old"  # marker kind of the folder an output being replaced is moved into
 
 _STARTED = time.time()
@@ -70,18 +70,6 @@ def marker_text(kind: str) -> str:
 
     created = datetime.now(timezone.utc).isoformat(timespec="seconds")
     return json.dumps({"kind": kind, "fleetsim": __version__, "created": created}) + "\n"
-
-
-def read_marker(folder: str | Path) -> dict[str, Any] | None:
-    """The marker of ``folder`` as a dict with a string ``kind``, or None when it has none."""
-    path = Path(folder) / MARKER
-    try:
-        if path.is_symlink() or not path.is_file():
-            return None
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return None
-    return data if isinstance(data, dict) and isinstance(data.get("kind"), str) else None
 
 
 def _home() -> Path | None:
@@ -137,64 +125,12 @@ def check_target(
                     f"{label}: holds an earlier fleetsim {word}; pass --force to replace it, or choose another folder"
                 )
             if marker["kind"] not in _RESUMES[kind]:  # to be replaced: only if all of it is ours
-                extra = _foreign(where, marker["kind"])
+                extra = foreign(where, marker["kind"])
                 if extra:
                     names = ", ".join(extra[:3]) + (", ..." if len(extra) > 3 else "")
                     raise FleetsimError(f"{label}: holds files fleetsim did not write ({names}); "
                                         "move them away or choose another folder")
     return where
-
-
-# What a folder of each kind may hold (anything else was put there by someone else): names
-# at the top, and the file name patterns allowed in each subfolder.
-_RUN_FILES = {"summary.json", "config.json", "events.parquet", "rounds.parquet", "census.parquet",
-              "report.html", "report.md"}
-_STUDY_FILES = {"front.csv", "study.json", "study.md", "comparison.json", "comparison.md", "frontier.png",
-                "frontier.svg", *(f"{stem}.{ext}" for stem in ("runs", "cell_means", "differences")
-                                  for ext in ("parquet", "csv"))}
-_SUBFOLDERS = {"run": {"tables": re.compile(r"[^/]+\.csv")},
-               "study": {"cells": re.compile(r"[0-9a-f]+\.json"), "heatmaps": re.compile(r"[^/]+\.(png|svg)")}}
-_TELEMETRY_FILES = {"telemetry.json", *(f"{stem}.{ext}" for stem in ("intervals", "snapshots", "traits", "tasks")
-                                         for ext in ("csv", "parquet"))}
-_WORKLOADS = "workloads"  # a run of several workloads: one run folder per workload under it
-_TEMPORARY = re.compile(r"\.partial-.*|\..+\.partial")  # atomic_text, atomic_save and the report's temporary files
-
-
-def _foreign(where: Path, kind: str) -> list[str]:
-    """Entries of the fleetsim folder ``where`` (of ``kind``) that fleetsim would not have written."""
-    if kind == "telemetry":
-        return _foreign_in(where, _TELEMETRY_FILES, {}, nested=False)
-    group = "run" if kind == "run" else "study"
-    files = _RUN_FILES if group == "run" else _STUDY_FILES
-    return _foreign_in(where, files, _SUBFOLDERS[group], nested=group == "run")
-
-
-def _foreign_in(where: Path | str, files: set[str], subfolders: dict[str, re.Pattern[str]], nested: bool,
-                prefix: str = "") -> list[str]:
-    """:func:`_foreign` for one folder; ``nested``: it may hold ``workloads/NAME/``, each a run
-    folder of one workload (without a marker or further workloads)."""
-    extra = []
-    for entry in sorted(os.scandir(where), key=lambda e: e.name):
-        if (entry.name == MARKER and not prefix) or _TEMPORARY.fullmatch(entry.name):
-            continue
-        if entry.is_symlink():
-            extra.append(prefix + entry.name)
-        elif nested and entry.name == _WORKLOADS and entry.is_dir():
-            for child in sorted(os.scandir(entry.path), key=lambda e: e.name):
-                inner = f"{prefix}{entry.name}/{child.name}"
-                if child.is_symlink() or not child.is_dir():
-                    extra.append(inner)
-                else:
-                    extra += _foreign_in(child.path, files, subfolders, False, inner + "/")
-        elif entry.name in subfolders and entry.is_dir():
-            pattern = subfolders[entry.name]
-            for child in sorted(os.scandir(entry.path), key=lambda e: e.name):
-                if child.is_symlink() or not child.is_file() or not (
-                        pattern.fullmatch(child.name) or _TEMPORARY.fullmatch(child.name)):
-                    extra.append(f"{prefix}{entry.name}/{child.name}")
-        elif entry.name not in files or not entry.is_file():
-            extra.append(prefix + entry.name)
-    return extra
 
 
 def _remove(path: Path) -> None:

@@ -30,7 +30,7 @@ if TYPE_CHECKING:
 
     from ..result import Result
 
-__all__ = ["write_run", "event_frame", "read_summary", "WORKLOADS"]
+__all__ = ["write_run", "fill_run", "event_frame", "read_summary", "WORKLOADS"]
 
 WORKLOADS = "workloads"
 """Subfolder of a run of several workloads: one run folder per workload (``workloads/NAME/``)."""
@@ -59,17 +59,20 @@ def write_run(
     FleetsimError (see :func:`check_target`) with nothing touched.
     """
 
-    def fill(folder: Path) -> None:
-        _fill(result, folder)
-        parts = result.workloads
-        if len(parts) > 1:
-            taken: set[str] = set()
-            for name, part in parts.items():
-                sub = inside(folder, folder / WORKLOADS / safe_name(name, taken))
-                sub.mkdir(parents=True)
-                _fill(part, sub)
+    return atomic_folder(Path(out), lambda folder: fill_run(result, folder), kind="run", force=force, inputs=inputs,
+                         label=label, notice=notice)
 
-    return atomic_folder(Path(out), fill, kind="run", force=force, inputs=inputs, label=label, notice=notice)
+
+def fill_run(result: Result, folder: Path) -> None:
+    """Write every file of a run folder of ``result`` (``workloads/NAME/`` too) into the new ``folder``."""
+    _fill(result, folder)
+    parts = result.workloads
+    if len(parts) > 1:
+        taken: set[str] = set()
+        for name, part in parts.items():
+            sub = inside(folder, folder / WORKLOADS / safe_name(name, taken))
+            sub.mkdir(parents=True)
+            _fill(part, sub)
 
 
 def _fill(result: Result, folder: Path) -> None:

@@ -4,7 +4,9 @@ The report reads only the run folder (summary.json, config.json, events.parquet 
 tables/*.csv, as :func:`fleetsim.output.write_run` writes them) and answers, section by
 section, the questions a team asks of a run; docs/report.md describes every section. A run
 of several workloads gets one report: how they shared the fleet, then each workload's own
-report from its run folder under ``workloads/``, then the caution.
+report from its run folder under ``workloads/``, then the caution. One set of settings run
+under several seeds (a multi-seed run folder, or several run folders) gets the report of
+their combined summary (:mod:`.seeds`): every figure's mean with its between-seed interval.
 """
 
 from __future__ import annotations
@@ -12,7 +14,7 @@ from __future__ import annotations
 import os
 import uuid
 import warnings
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from pathlib import Path
 
@@ -21,9 +23,14 @@ from .markdown import render_markdown, render_markdown_several
 from .page import render_html, render_html_several
 from .rundir import read_run_folder
 from .sections import build_sections, build_several
+from .seeds import build_seed_sections, is_seeds, read_seeds_summary, seeds_header
 from .several import is_several, read_several_folder
 
-__all__ = ["write_report", "render_report"]
+__all__ = ["write_report", "render_report", "render_runs_report", "write_runs_report"]
+
+_SEEDS_FOOTER = ("Every figure comes from the combined summary of the seeds (summary.json), as the tables show "
+                 "it: each figure's mean over the seeds, its 95% Student t interval between seeds and the seeds "
+                 "it rests on; each seed's own run folder holds its own figures.")
 
 
 def _version() -> str:
@@ -40,6 +47,8 @@ def render_report(run_dir: str | Path) -> tuple[str, str]:
     its run folder under ``workloads/``. Raises FleetsimError when ``run_dir`` is not a
     readable run folder.
     """
+    if is_seeds(run_dir):
+        return _render_seeds(read_seeds_summary(run_dir), Path(run_dir).resolve().name)
     if is_several(run_dir):
         return _render_several(run_dir)
     folder = read_run_folder(run_dir)
@@ -49,6 +58,64 @@ def render_report(run_dir: str | Path) -> tuple[str, str]:
     version = _version()
     return (render_html(sections, folder.summary, name, version),
             render_markdown(sections, folder.summary, name, version))
+
+
+def _render_seeds(combined: dict, name: str) -> tuple[str, str]:
+    """The report of a combined summary of several seeds as (HTML, Markdown)."""
+    sections = build_seed_sections(combined)
+    header = seeds_header(combined)
+    version = _version()
+    return (render_html(sections, header, name, version, footer=_SEEDS_FOOTER),
+            render_markdown(sections, header, name, version))
+
+
+def _combined_runs(run_dirs: Sequence[str | Path]) -> dict:
+    """The combined summary of several run folders of the same settings, each checked as the
+    report checks any run folder. Raises FleetsimError (one line)."""
+    from ..output.seeds import combine_runs
+
+    if len(run_dirs) < 2:
+        raise FleetsimError(f"{run_dirs[0] if run_dirs else 'RUN_DIR'}: a report over several runs needs at least "
+                            "two run folders")
+    for folder in run_dirs:
+        if is_seeds(folder) or is_several(folder):
+            what = "a multi-seed run folder" if is_seeds(folder) else "a run of several workloads"
+            raise FleetsimError(f"{folder}: is {what}; a report over several runs takes ordinary run folders "
+                                "of one workload")
+        read_run_folder(folder)
+    return combine_runs(run_dirs, [str(Path(f).resolve()) for f in run_dirs])
+
+
+def render_runs_report(run_dirs: Sequence[str | Path], name: str = "several runs") -> tuple[str, str]:
+    """The report over several run folders of the same settings under different seeds, as
+    (HTML, Markdown); ``name`` is the folder the masthead names. Raises FleetsimError naming both
+    folders and what differs when their settings differ."""
+    combined = _combined_runs(run_dirs)
+    return _render_seeds(combined, name)
+
+
+def write_runs_report(run_dirs: Sequence[str | Path], out: str | Path, *, force: bool = False) -> tuple[Path, Path]:
+    """Write the report over several run folders into the new folder ``out``, all or nothing:
+    its combined summary.json, report.html and report.md (a folder of kind ``seeds``, which
+    ``fleetsim report OUT`` renders again). ``force`` replaces an earlier fleetsim output.
+    Raises FleetsimError."""
+    import json
+
+    from ..output import atomic_folder, check_target
+
+    inputs = [Path(f) / "summary.json" for f in run_dirs]
+    check_target(out, "seeds", force, inputs, f"--out {out}")  # refuse before reading, not after
+    combined = _combined_runs(run_dirs)
+    where = Path(out)
+    page, markdown = _render_seeds(combined, Path(os.path.abspath(where)).name)
+
+    def fill(folder: Path) -> None:
+        (folder / "summary.json").write_text(json.dumps(combined, indent=2) + "\n", encoding="utf-8")
+        (folder / "report.html").write_text(page, encoding="utf-8", newline="\n")
+        (folder / "report.md").write_text(markdown, encoding="utf-8", newline="\n")
+
+    atomic_folder(where, fill, kind="seeds", force=force, inputs=inputs, label=f"--out {out}")
+    return where / "report.html", where / "report.md"
 
 
 def _render_several(run_dir: str | Path) -> tuple[str, str]:
@@ -102,7 +169,7 @@ def write_report(run_dir: str | Path) -> tuple[Path, Path]:
 
     folder = Path(run_dir)
     marker = read_marker(folder) if folder.is_dir() else None
-    if folder.is_dir() and (marker is None or marker["kind"] != "run"):
+    if folder.is_dir() and (marker is None or marker["kind"] not in ("run", "seeds")):
         raise FleetsimError(f"{run_dir}: not a run folder written by 'fleetsim run' (no {MARKER} file of "
                             "kind run); nothing written")
     page, markdown = render_report(run_dir)

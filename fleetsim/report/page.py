@@ -220,12 +220,13 @@ def _question(section: Section) -> Markup:
     return tag("li", tag("a", section.question, href=f"#s-{section.id}"))
 
 
-def render_html(sections: Sequence[Section], summary: dict, run_name: str, version: str) -> str:
-    """The whole page as a string."""
+def render_html(sections: Sequence[Section], summary: dict, run_name: str, version: str,
+                footer: str | None = None) -> str:
+    """The whole page as a string; ``footer`` replaces the footer's sentence on where the numbers come from."""
     main = join(_section(i + 1, s) for i, s in enumerate(sections))
-    footer = (f"Written by fleetsim {version} from the run folder {run_name}. "
-              "Every figure is drawn from the numbers in the tables beside it, which come from summary.json, "
-              "tables/ and events.parquet in that folder.")
+    footer = f"Written by fleetsim {version} from the run folder {run_name}. " + (footer or (
+        "Every figure is drawn from the numbers in the tables beside it, which come from summary.json, "
+        "tables/ and events.parquet in that folder."))
     return _document(summary, _masthead(summary), join(_question(s) for s in sections), main, footer, version)
 
 
