@@ -86,8 +86,31 @@ def render_summary(summary: dict[str, Any]) -> str:
     return "\n".join(lines)
 
 
+def _eps(x: Any) -> str:
+    """An epsilon with three significant figures; ``n/a`` for None."""
+    return "n/a" if x is None else f"{x:.3g}"
+
+
+def _privacy_lines(privacy: dict[str, Any] | None) -> list[str]:
+    """Each device's own epsilon (median, worst) beside the uniform-sampling claim (none without privacy)."""
+    if privacy is None:
+        return []
+    e, worst = privacy["epsilon"], privacy.get("worst_device")
+    claim = (f"a uniform-sampling analysis would claim {_eps(privacy['epsilon_uniform_sampling'])} over "
+             f"{privacy['committed_rounds']} committed rounds")
+    if not privacy["reporting_devices"]:
+        return [f"privacy: no device had a report used by a committed round (epsilon 0 for every device); {claim}"]
+    where = (f" ({worst['device_type']} in {worst['region']}, {worst['participations']} reports)" if worst else "")
+    return [
+        f"privacy (per device, epsilon at delta {privacy['delta']:.3g}): median {_eps(e['median'])}, worst "
+        f"{_eps(e['worst'])}{where}; {claim}",
+        f"  {_pct(privacy['devices_over_uniform_claim'])} of devices spent more than that claim; "
+        f"{privacy['never_reported']:,} never reported (epsilon 0)",
+    ]
+
+
 def _workload_lines(summary: dict[str, Any]) -> list[str]:
-    """Rounds, load, waste and participation of one workload."""
+    """Rounds, load, waste, participation and (with ``privacy``) privacy of one workload."""
     r, w, b = summary["rounds"], summary["waste"], summary["bias"]
     d = r["duration_s"]
     lines = [
@@ -121,7 +144,7 @@ def _workload_lines(summary: dict[str, Any]) -> list[str]:
             f"  {name:<18} {_pct(v['fleet_share']):>7} {_pct(v['eligible_share']):>9} "
             f"{_pct(v['report_share']):>8} {_pct(v['weight_share']):>7} {ratio:>6}"
         )
-    return lines
+    return lines + _privacy_lines(summary.get("privacy"))
 
 
 def summary_html(summary: dict[str, Any]) -> str:

@@ -51,6 +51,7 @@ COMMAND_DOCS = {
     "compare": "studies.md",
     "telemetry": "telemetry.md",
     "fit": "fit.md",
+    "impact": "impact.md",
 }
 """The doc that owns each command and its options (a new command must be given one here)."""
 
@@ -142,13 +143,18 @@ def _literals_in(annotation: Any) -> list[str]:
     return [v for arg in typing.get_args(annotation) for v in _literals_in(arg)]
 
 
+SECTION_DOCS = {"impact.": "impact.md"}
+"""Fleet file sections whose keys a doc of their own documents (fleet-file.md names the section)."""
+
+
 def config_names(model: type[BaseModel] = Config, path: str = "") -> list[Name]:
     """Every key of the fleet file, nested, and every fixed word a key takes (Literal values)."""
     names = []
+    doc = next((d for prefix, d in SECTION_DOCS.items() if path.startswith(prefix)), "fleet-file.md")
     for field_name, field in model.model_fields.items():
         key = field.alias or field_name
-        names.append(Name(key, "fleet-file.md", f"fleet file key {path}{key}"))
-        names += [Name(word, "fleet-file.md", f"a value of {path}{key}") for word in _literals_in(field.annotation)]
+        names.append(Name(key, doc, f"fleet file key {path}{key}"))
+        names += [Name(word, doc, f"a value of {path}{key}") for word in _literals_in(field.annotation)]
         for sub in _models_in(field.annotation):
             names += config_names(sub, f"{path}{key}.")
     return names

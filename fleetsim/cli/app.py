@@ -13,7 +13,7 @@ from typing import Any
 import typer
 from typer.core import TyperGroup
 
-from . import fit, report, run, study, telemetry
+from . import fit, impact, report, run, study, telemetry
 from .console import OptionValueError, one_line
 
 try:  # typer vendors its own copy of click from 0.22 on
@@ -93,6 +93,7 @@ app.command("check")(run.check)
 app.command("schema")(run.schema)
 app.command("policies")(run.policies)
 app.command("report")(report.report)
+app.command("impact")(impact.impact)
 app.command("sweep")(study.sweep)
 app.command("compare")(study.compare)
 app.command("telemetry")(telemetry.telemetry)

@@ -9,6 +9,7 @@ Modules, bottom up: ``fields`` (quantity types, traits, the strict base that ref
 renamed keys), ``yamltext`` (the YAML reader), ``devices`` (device types, signals, the
 settled state, regional adjustments), ``fleetspec`` (regions, the fleet mix, merged
 (type, region) specs), ``protocol`` (update encoding, secure aggregation, pacing),
+``privacy`` (a workload's clipping and noise), ``impact`` (the model-impact replay's invented task and model),
 ``models`` (the other sections of a file),
 ``loading`` (overrides, validation, error lines, hash, schema), ``memory`` (the estimate
 that refuses a run too large for the machine).
@@ -35,6 +36,7 @@ from .fields import (
     Trait,
 )
 from .fleetspec import MAX_NAME_LENGTH, WEEKDAYS, FleetSpec, Region, name_problem
+from .impact import GroupShift, ImpactSettings
 from .jobs import MAIN, Job, merge_sections
 from .loading import apply_overrides, build_config, config_hash, config_schema, example_path, load_config
 from .memory import check_memory, estimate_memory, memory_limit
@@ -51,6 +53,7 @@ from .models import (
     Workload,
     WorkloadEntry,
 )
+from .privacy import Privacy
 from .protocol import WEIGHT_BYTES, Pacing, SecureAggregation, UpdateEncoding
 from .yamltext import MAX_DEPTH, MAX_FILE_BYTES, MAX_NODES, load_yaml_text, read_yaml, structure_problem
 
@@ -83,6 +86,7 @@ __all__ = [
     "FleetSpec",
     "Workload",
     "WorkloadEntry",
+    "Privacy",
     "Sharing",
     "Job",
     "MAIN",
@@ -96,6 +100,8 @@ __all__ = [
     "Horizon",
     "Disruption",
     "Config",
+    "ImpactSettings",
+    "GroupShift",
     "load_config",
     "build_config",
     "apply_overrides",

@@ -33,7 +33,9 @@ from .fields import (
     _Strict,
 )
 from .fleetspec import FleetSpec, name_problem
+from .impact import FleetImpact
 from .jobs import MAIN, Job, merge_sections
+from .privacy import Privacy
 from .protocol import Pacing, SecureAggregation, UpdateEncoding
 from .yamltext import structure_problem
 
@@ -55,6 +57,8 @@ class Workload(_Strict):
     # Unset or null (the default, held as infinity): no limit. A value in the file must be finite.
     execution_limit: PositiveDuration = Field(default=float("inf"))
     crash_rate: Hazard = Field(default=0.0, ge=0, description="crash hazard while working, per hour")
+    # Unset or null: the aggregation adds no noise, and no privacy is accounted.
+    privacy: Privacy | None = None
 
     @field_validator("requires")
     @classmethod
@@ -252,6 +256,8 @@ class Config(_Strict):
     workloads: dict[str, WorkloadEntry] | None = None
     sharing: Sharing | None = None
     disruptions: list[Disruption] = Field(default_factory=list)
+    # The model-impact replay's invented task and model (docs/impact.md); the engine ignores it.
+    impact: FleetImpact = None  # ImpactSettings | None, its type and region names checked against the fleet
 
     @model_validator(mode="before")
     @classmethod

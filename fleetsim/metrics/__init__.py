@@ -1,5 +1,5 @@
-"""Rounds, straggler waste, participation bias and the unmasking of secure aggregation, computed
-from a run's record only.
+"""Rounds, straggler waste, participation bias, the unmasking of secure aggregation and, for a
+workload with ``privacy``, each device's privacy loss, computed from a run's record only.
 
 Definitions are in docs/metrics.md; every figure in summary.json and the report comes from
 the tables built here (one source of truth). The statistics themselves are pure functions
@@ -32,6 +32,7 @@ from ..units import format_instant
 from .bias import BIAS_TABLES, PAIR_KEY, PAIR_TABLE, bias_tables, pair_bias_table, participation_counts
 from .load import hourly_table, rounds_open, server_load_part
 from .outcomes import outcomes_by_hour, outcomes_by_region, outcomes_part, participation_status
+from .privacy import PRIVACY_CAUTION, privacy_account
 from .rounds import closed_per_hour, round_frame
 from .secure import secure_part, unmasking_by_accepted
 from .sharing import GROUPINGS, HEADER_KEYS, competition_table, sharing_part
@@ -100,9 +101,14 @@ def compute_metrics(record: RunRecord) -> Metrics:
         "sharing": sharing_part(record, tables),
         "workloads": {name: {key: value for key, value in m.summary.items() if key not in (*HEADER_KEYS, "caution")}
                       for name, m in each.items()},
-        "caution": CAUTION,
+        "caution": _caution(any("privacy" in m.summary for m in each.values())),
     }
     return Metrics(summary=clean(summary), tables=tables, workloads=each)
+
+
+def _caution(privacy: bool) -> str:
+    """The standing caution, with the privacy figures' own when a workload accounts privacy."""
+    return f"{CAUTION} {PRIVACY_CAUTION}" if privacy else CAUTION
 
 
 def _round_extra(config: Any, rounds: pd.DataFrame, closed: pd.DataFrame, hourly: pd.DataFrame,
@@ -152,6 +158,8 @@ def _one_workload(record: RunRecord) -> Metrics:
     closed = closed_per_hour(rounds, n_hours)
     hourly, by_region, peak = hourly_table(start, horizon_s, closed, record, rounds, region_names)
     survival, survival_minutes = task_survival_tables(parts, type_names)
+    privacy = privacy_account(config, parts, record.rounds, fleet)
+    privacy_tables = privacy.tables() if privacy is not None else {}
 
     tables = {
         "rounds": rounds,
@@ -172,6 +180,7 @@ def _one_workload(record: RunRecord) -> Metrics:
         "task_survival": survival,
         "task_survival_by_minute": survival_minutes,
         "unmasking_by_accepted": unmasking_by_accepted(rounds, secure),
+        **privacy_tables,
     }
     round_extra = _round_extra(config, rounds, closed, hourly, horizon_s)
     summary = {
@@ -196,6 +205,7 @@ def _one_workload(record: RunRecord) -> Metrics:
             "checkins_per_s_peak_hour": float(hourly["checkins_per_s"].max()) if n_hours else None,
         },
         "server_load": server_load_part(record, hourly, rounds, horizon_s),
-        "caution": CAUTION,
+        **({"privacy": privacy.summary(privacy_tables)} if privacy is not None else {}),
+        "caution": _caution(privacy is not None),
     }
     return Metrics(summary=clean(summary), tables=tables)

@@ -2,8 +2,9 @@
 
 The report reads only what :func:`fleetsim.output.write_run` wrote: summary.json, the
 run's settings (config.json, validated into a :class:`fleetsim.config.Config`) and the
-tables under tables/, which hold every figure the report shows. The event log is not read,
-but a run folder must hold a readable one. Every problem is a
+tables under tables/, which hold every figure the report shows (with ``privacy`` in the
+summary, the privacy tables too; with impact.json, written by ``fleetsim impact``, it and its
+tables). The event log is not read, but a run folder must hold a readable one. Every problem is a
 :class:`~fleetsim.errors.FleetsimError` whose one-line message names the file and what is
 wrong with it.
 """
@@ -22,13 +23,13 @@ from ..errors import ConfigError, FleetsimError
 from ..output import read_summary, unescape_frame
 from ..survival import SURVIVAL_COLUMNS
 
-__all__ = ["RunFolder", "read_run_folder"]
+__all__ = ["RunFolder", "read_run_folder", "PRIVACY_TABLES", "IMPACT_FILE"]
 
 # Columns holding names (from the fleet file or the metrics): read as text, never as numbers
 # or missing values, so a region called "NA" or "1" stays exactly what the fleet file says.
 _TEXT_COLUMNS = {"device_type", "region", "data_quartile", "cause", "dropout_cause", "dropout_phase", "status",
                  "hour_utc", "opened_utc",
-                 "day_utc", "grouping", "scope", "workload", "clock"}
+                 "day_utc", "grouping", "group", "scope", "workload", "clock"}
 
 # Every table the report reads, with the columns it needs.
 _TABLE_COLUMNS: dict[str, tuple[str, ...]] = {
@@ -111,6 +112,9 @@ class RunFolder:
     summary: dict[str, Any]
     config: Config
     tables: dict[str, pd.DataFrame]
+    impact: dict[str, Any] | None = None
+    """impact.json as ``fleetsim impact`` wrote it (None when the folder has none); its tables
+    ``impact_curves`` (and ``impact_final`` when present) are in ``tables``."""
 
     @property
     def type_names(self) -> list[str]:
@@ -148,6 +152,95 @@ def _read_json(path: Path, keys: tuple[str, ...], folder: Path) -> dict[str, Any
         except KeyError:
             raise FleetsimError(f"{path}: lacks '{key}'; was it written by this version of fleetsim?") from None
     return data
+
+
+PRIVACY_TABLES = {"device_type": "privacy_by_device_type", "region": "privacy_by_region"}
+"""Grouping column -> table name of the per-device privacy figures by group (with ``privacy``)."""
+_PRIVACY_COLUMNS = ("devices", "reporting_devices", "participations_max", "epsilon_median", "epsilon_p90",
+                    "epsilon_p99", "epsilon_worst", "epsilon_uniform_sampling", "devices_over_uniform_claim")
+_PRIVACY_KEYS = ("clipping_norm", "noise_multiplier", "delta", "committed_rounds", "sampling_rate", "devices",
+                 "reporting_devices", "never_reported", "participations_max", "epsilon.median", "epsilon.p90",
+                 "epsilon.p99", "epsilon.worst", "epsilon_uniform_sampling", "devices_over_uniform_claim",
+                 "worst_device")
+"""Keys of summary.json's ``privacy`` block the report reads (when the workload had ``privacy``)."""
+
+IMPACT_FILE = "impact.json"
+_IMPACT_NUMBERS = ("impact.overall.accuracy", "impact.worst_group.accuracy", "impact.best_group.accuracy",
+                   "impact.gap", "impact.rounds_trained")
+_IMPACT_TEXT = ("impact.worst_group.grouping", "impact.worst_group.group", "impact.best_group.grouping",
+                "impact.best_group.group", "caution")
+_IMPACT_GROUPS = ("impact.by_device_type", "impact.by_region", "impact.by_data_quartile")
+_IMPACT_TABLES = {"impact_curves": ("round", "time_s", "grouping", "group", "accuracy", "loss"),
+                  "impact_final": ("grouping", "group", "accuracy", "loss", "devices", "reports")}
+"""impact.json's tables: the curves (required beside it) and the final figures (read when present)."""
+
+
+def _is_number(value: Any, missing: bool = False) -> bool:
+    """A JSON number (not true/false); None too when ``missing`` is allowed."""
+    if value is None:
+        return missing
+    return isinstance(value, int | float) and not isinstance(value, bool)
+
+
+def _read_privacy(path: Path, summary: dict[str, Any]) -> dict[str, pd.DataFrame]:
+    """The privacy tables of a run whose summary has ``privacy`` (none otherwise), its keys checked."""
+    privacy = summary.get("privacy")
+    if privacy is None:
+        return {}
+    for key in _PRIVACY_KEYS:
+        try:
+            _lookup(privacy, key)
+        except KeyError:
+            raise FleetsimError(f"{path / 'summary.json'}: lacks 'privacy.{key}'; was it written by this version "
+                                "of fleetsim?") from None
+    worst = privacy["worst_device"]
+    if worst is not None and not (isinstance(worst, dict) and all(
+            k in worst for k in ("device", "device_type", "region", "participations", "epsilon"))):
+        raise FleetsimError(f"{path / 'summary.json'}: 'privacy.worst_device' is not a device's record; was it "
+                            "written by this version of fleetsim?")
+    return {name: _read_table(path / "tables" / f"{name}.csv", (key, *_PRIVACY_COLUMNS))
+            for key, name in PRIVACY_TABLES.items()}
+
+
+def _check_impact(where: Path, data: dict[str, Any]) -> None:
+    """Check that impact.json holds the figures the report shows, each of its kind (one-line errors)."""
+    def bad(key: str, value: Any, expected: str) -> FleetsimError:
+        return FleetsimError(f"{where}: '{key}' is {json.dumps(value)[:60]}, expected {expected}; was it written "
+                             "by 'fleetsim impact'?")
+
+    for keys, check, expected in ((_IMPACT_NUMBERS, _is_number, "a number"),
+                                  (_IMPACT_TEXT, lambda v: isinstance(v, str), "text"),
+                                  (_IMPACT_GROUPS, lambda v: isinstance(v, dict), "an object of accuracies")):
+        for key in keys:
+            value = _lookup(data, key)
+            if not check(value):
+                raise bad(key, value, expected)
+    for key in _IMPACT_GROUPS:
+        for name, value in _lookup(data, key).items():
+            if not _is_number(value, missing=True):
+                raise bad(f"{key}.{name}", value, "a number")
+
+
+def _read_impact(path: Path) -> tuple[dict[str, Any] | None, dict[str, pd.DataFrame]]:
+    """impact.json and its tables when the folder has one (``fleetsim impact``), else (None, {})."""
+    where = path / IMPACT_FILE
+    if not where.exists():
+        return None, {}
+    data = _read_json(where, (*_IMPACT_NUMBERS, *_IMPACT_TEXT, *_IMPACT_GROUPS), path)
+    _check_impact(where, data)
+    tables = {}
+    for name, columns in _IMPACT_TABLES.items():
+        target = path / "tables" / f"{name}.csv"
+        if not target.exists():
+            if name == "impact_final":
+                continue
+            raise FleetsimError(f"{target}: missing although {where} is there; run 'fleetsim impact' again")
+        table = _read_table(target, columns)
+        text = [c for c in columns if c not in _TEXT_COLUMNS and not pd.api.types.is_numeric_dtype(table[c])]
+        if text:
+            raise FleetsimError(f"{target}: column {text[0]} holds text where numbers belong")
+        tables[name] = table
+    return data, tables
 
 
 def _read_table(path: Path, columns: tuple[str, ...]) -> pd.DataFrame:
@@ -214,10 +307,13 @@ def read_run_folder(folder: str | Path) -> RunFolder:
                             "by this version of fleetsim?")
     config = _read_config(path / "config.json", path)
     tables = {name: _read_table(path / "tables" / f"{name}.csv", cols) for name, cols in _TABLE_COLUMNS.items()}
+    tables.update(_read_privacy(path, summary))
+    impact, impact_tables = _read_impact(path)
+    tables.update(impact_tables)
     _check_events(path / "events.parquet")
     regions = list(tables["bias_by_region"]["region"])
     lacking = sorted(set(regions) - set(tables["hourly_eligible_by_region"]["region"]))
     if lacking:
         raise FleetsimError(f"{path / 'tables' / 'hourly_eligible_by_region.csv'}: lacks region(s) "
                             f"{', '.join(lacking)}")
-    return RunFolder(path=path, summary=summary, config=config, tables=tables)
+    return RunFolder(path=path, summary=summary, config=config, tables=tables, impact=impact)

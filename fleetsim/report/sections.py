@@ -10,8 +10,10 @@ from __future__ import annotations
 from dataclasses import replace
 
 from .bias import bias_section, participation_section
+from .impact import impact_section
 from .model import Part, Section
 from .overview import caution_of, caution_section, headline_section, run_section
+from .privacy import privacy_section
 from .rounds import durations_section, over_time_section
 from .rundir import RunFolder
 from .secure import secure_section
@@ -25,11 +27,13 @@ __all__ = ["build_sections", "build_several"]
 
 
 def build_sections(r: RunFolder) -> list[Section]:
-    """Every section of the report, in reading order (secure aggregation's after the round durations)."""
+    """Every section of the report, in reading order: secure aggregation's after the round
+    durations, privacy's and model impact's after who takes part (each only when there is one)."""
     secure = secure_section(r)  # only when secure aggregation was on
+    extra = [s for s in (privacy_section(r), impact_section(r)) if s is not None]  # workload.privacy; impact.json
     return [run_section(r), headline_section(r), over_time_section(r), durations_section(r),
             *([secure] if secure is not None else []), waste_section(r), bias_section(r), participation_section(r),
-            survival_section(r), cost_section(r), load_section(r), caution_section(r)]
+            *extra, survival_section(r), cost_section(r), load_section(r), caution_section(r)]
 
 
 def _prefixed(section: Section, prefix: str) -> Section:

@@ -32,10 +32,13 @@ from collections.abc import Callable, Sequence
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass
-from typing import Any, Protocol
+from typing import TYPE_CHECKING, Any, Protocol
 
 from ..config import Config
 from ..errors import ConfigError, FleetsimError
+
+if TYPE_CHECKING:
+    from ..result import Result
 
 __all__ = [
     "Job",
@@ -74,11 +77,33 @@ def run_one(config: Config, seed: int) -> dict[str, Any]:
 
     started = time.perf_counter()
     try:
-        summary = simulate(config, seed=seed).summary
+        summary = with_impact(simulate(config, seed=seed))
     except FleetsimError as exc:
         lines = exc.problems if isinstance(exc, ConfigError) else str(exc).splitlines()
         return {"problems": lines or [type(exc).__name__]}
     return {"summary": summary, "elapsed_s": time.perf_counter() - started}
+
+
+def with_impact(result: Result) -> dict[str, Any]:
+    """The run's summary; when its settings have an ``impact`` section, with the model its
+    committed rounds train (:func:`fleetsim.impact.model_impact`) under ``impact`` (each
+    workload's under ``workloads.NAME.impact``), so that a study can rank and bound on it.
+    The final parameters and the caution text are left out of the study's copy."""
+    summary = result.summary
+    if result.config.impact is None:
+        return summary
+    from ..impact import model_impact
+
+    def figures(part: Result) -> dict[str, Any]:
+        done = model_impact(part.config, part.participations, part.rounds, part.fleet, part.seed).summary
+        return {key: value for key, value in done.items() if key not in ("model", "caution")}
+
+    if "workloads" not in summary:
+        return {**summary, "impact": figures(result)}
+    parts = result.workloads
+    workloads = {name: {**figures_of, "impact": figures(parts[name])}
+                 for name, figures_of in summary["workloads"].items()}
+    return {**summary, "workloads": workloads}
 
 
 Done = Callable[[Job, dict[str, Any]], None]

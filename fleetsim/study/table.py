@@ -137,6 +137,13 @@ _DIRECTIONS: tuple[tuple[str, Direction | None], ...] = (
     ("participations_by_outcome_late", "lower"),
     ("participations_by_outcome_stopped", "lower"),
     ("participations_by_outcome_dropout", "lower"),
+    # The model a run's rounds train (a study's runs with an ``impact`` section) and the
+    # privacy each device spends (a workload with ``privacy``): docs/impact.md.
+    ("impact_gap", "lower"),
+    ("impact_*accuracy", "higher"),
+    ("impact_*loss", "lower"),
+    ("privacy_*epsilon*", "lower"),
+    ("privacy_devices_over_uniform_claim", "lower"),
 )
 
 
