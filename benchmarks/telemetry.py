@@ -15,6 +15,14 @@ Steps, each timed in this process (the example fleet file; seed 0):
    (``fleetsim.replay``) on the same devices and horizon, twice each, alternating.
 
 Rows and seconds are printed; results are recorded in benchmarks/README.md.
+
+    python benchmarks/telemetry.py --fit-command LOGS [--before DIR]
+
+times instead the whole command ``fleetsim fit LOGS --signals-from snapshots --out ...`` (reading,
+validation, the fit, the goodness of fit, writing) in a subprocess, with this checkout and,
+given ``--before``, with another checkout of the repository (e.g. the snapshots of
+``fleetsim telemetry --devices 100000 --days 7 --snapshots-every 100min --format parquet``:
+about 10 million rows; ``--devices 10000``: about 1 million).
 """
 
 from __future__ import annotations
@@ -22,7 +30,9 @@ from __future__ import annotations
 import argparse
 import os
 import platform
+import subprocess
 import sys
+import tempfile
 import time
 from pathlib import Path
 
@@ -40,12 +50,33 @@ def timed(label: str, work):
     return out, wall
 
 
+def fit_command(logs: str, checkout: Path) -> float:
+    """Wall seconds of the whole ``fleetsim fit`` command on ``logs`` with the code in ``checkout``."""
+    with tempfile.TemporaryDirectory() as out:
+        code = "import sys; from fleetsim.cli import main; sys.argv = ['fleetsim'] + sys.argv[1:]; main()"
+        env = dict(os.environ, PYTHONPATH=str(checkout))
+        start = time.perf_counter()
+        subprocess.run([sys.executable, "-c", code, "fit", logs, "--signals-from", "snapshots", "--out",
+                        str(Path(out) / "fitted.yaml")], env=env, check=True, stdout=subprocess.DEVNULL)
+        return time.perf_counter() - start
+
+
 def main(argv: list[str] | None = None) -> dict:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--quick", action="store_true")
     parser.add_argument("--snapshot-rows", type=int, default=None,
                         help="fit from only the first N snapshot rows (whole devices), to time a smaller fit")
+    parser.add_argument("--fit-command", metavar="LOGS", help="time the whole fleetsim fit command on LOGS")
+    parser.add_argument("--before", metavar="DIR", help="with --fit-command: also time the checkout in DIR")
     args = parser.parse_args(argv)
+    if args.fit_command:
+        figures = {}
+        for label, checkout in [("after", ROOT)] + ([("before", Path(args.before))] if args.before else []):
+            load = os.getloadavg()[0]
+            figures[label] = fit_command(args.fit_command, checkout)
+            print(f"fleetsim fit {args.fit_command} ({label}, {checkout}): {figures[label]:.1f} s; load average "
+                  f"{load:.2f} before, {os.getloadavg()[0]:.2f} after", flush=True)
+        return figures
     from fleetsim.config import read_yaml
     from fleetsim.fit import fit_fleet
     from fleetsim.replay import replay_from_frame

@@ -25,6 +25,7 @@ from scipy import linalg, stats
 from fleetsim.config import build_config
 from fleetsim.errors import ConfigError
 from fleetsim.fit import goodness as gof
+from fleetsim.fit.verdicts import holm
 from fleetsim.signals import SETTLED, build_signal_tables
 from fleetsim.telemetry import generate_telemetry
 
@@ -204,7 +205,7 @@ def test_holm_on_a_worked_example():
     # Holm (1979): sorted p 0.005, 0.01, 0.03, 0.04 against 0.05/4, 0.05/3, 0.05/2, 0.05/1; the
     # third fails, so only the first two are rejected. Adjusted p: 0.02, 0.03, 0.06, 0.06 (worked by hand).
     checks = [gof.Check(name, 0.0, 1, p, "", "") for name, p in zip("abcd", [0.01, 0.04, 0.03, 0.005], strict=True)]
-    out = gof._holm(checks, 0.05)
+    out = holm(checks, 0.05)
     assert [c.verdict for c in out] == ["rejected", "accepted", "accepted", "rejected"]
     assert np.allclose([c.holm_p for c in out], [0.03, 0.06, 0.06, 0.02])
 

@@ -3,7 +3,8 @@ file's mapping out (no file I/O; ``fleetsim fit`` in :mod:`fleetsim.cli.fit` rea
 
 Modules: ``stats`` (sufficient statistics of interval logs, pandas or Dask), ``rates``
 (maximum-likelihood rates, exact intervals, pooling), ``snapshots`` (the likelihood of
-check-in snapshots), ``mix`` (device mix, battery levels, traits, the held-out split),
+check-in snapshots), ``gapclasses`` (their gaps grouped into classes), ``mix`` (device mix,
+battery levels, traits, the held-out split),
 ``fleetfile`` (the signal patterns, the settled state), ``model`` (:func:`fit_fleet`),
 ``yamlout`` (the commented YAML text). docs/fit.md describes the method.
 """

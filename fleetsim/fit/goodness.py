@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Collection
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import dataclass
 from datetime import datetime, timedelta, timezone
 from typing import Any
 
@@ -19,52 +19,14 @@ from scipy import stats
 from ..config import SIGNALS, Config
 from ..errors import ConfigError
 from ..signals import SETTLED, STEP_S, SignalTables, build_signal_tables, local_calendar
+from .verdicts import CAUTION, Check, GoodnessReport, holm
 
 __all__ = ["CAUTION", "Check", "GoodnessReport", "goodness_of_fit"]
 
-CAUTION = ("passing these checks is not proof: the fleet file stays a model; fit it from real telemetry and follow "
-           "your organisation's review before its figures change a live fleet")
 _GAPS = (1800.0, 7200.0, 28800.0)  # gap bins between check-ins: up to 30 min, 2 h, 8 h, longer
 _PBINS = (0.05, 0.2, 0.5, 0.8, 0.95)  # bins of the model's probability in the transition check
 _MIN_VAR = 2.0  # predicted variance a transition cell (or an hour) needs to be counted
 _EPS = 1e-6
-
-
-@dataclass(frozen=True)
-class Check:
-    """One test: statistic, dof or n, p-value, Holm's verdict, where the logs depart most, law, Holm's p."""
-
-    name: str
-    statistic: float
-    dof_or_n: int
-    p_value: float
-    verdict: str
-    where: str
-    law: str = ""
-    holm_p: float = 1.0
-
-
-@dataclass
-class GoodnessReport:
-    """The checks, the one-line verdict, the figures (name -> matplotlib Figure) and notes."""
-
-    checks: list[Check]
-    verdict: str
-    figures: dict[str, Figure]
-    alpha: float = 0.05
-    notes: list[str] = field(default_factory=list)
-
-    def lines(self) -> list[str]:
-        """For the terminal: the verdict, a line per check, the notes, the caution."""
-        return [self.verdict] + [
-            f"  {c.verdict} {c.name}: {c.statistic:.4g} ({c.law}; {c.dof_or_n}), p={c.p_value:.3g}, Holm-adjusted "
-            f"{c.holm_p:.3g}" + (f"; {c.where}" if c.where else "") for c in self.checks
-        ] + [f"  note: {n}" for n in self.notes] + [f"caution: {CAUTION}"]
-
-    def to_dict(self) -> dict[str, Any]:
-        """For a JSON side file (figures by name only)."""
-        return {"verdict": self.verdict, "alpha": self.alpha, "method": "holm", "notes": list(self.notes),
-                "checks": [asdict(c) for c in self.checks], "figures": sorted(self.figures), "caution": CAUTION}
 
 
 @dataclass
@@ -164,7 +126,13 @@ def _share_check(fl: _Fleet, name: str, seen, T, E, g_dev, lab):
     A = (g_dev[None, :] == groups[:, None]).astype(float)
     V, Ec, Tc, Oc = A @ seen.var(axis=1, ddof=1), A @ E, A @ T, A @ seen[:, 0]
     use, scale = V > 0, np.where(V > 0, V, 1.0)
-    stat = np.array([((A @ seen[np.arange(g_dev.size), c] - Ec) ** 2 / scale)[use].sum() for c in lab])
+    # Per labelling, group sums as runs of devices sorted by group (a product per labelling is slow)
+    order, stat, rows = np.argsort(g_dev, kind="stable"), [], max(1, 2_000_000 // max(g_dev.size * 24, 1))
+    starts = np.flatnonzero(np.r_[True, g_dev[order][1:] != g_dev[order][:-1]])
+    for i in range(0, len(lab), rows):  # [labellings, devices, 24] a few labellings at a time
+        sums = np.add.reduceat(seen[order[None, :], lab[i:i + rows][:, order]], starts, axis=1)
+        stat.append((((sums - Ec) ** 2 / scale) * use).sum(axis=(1, 2)))
+    stat = np.concatenate(stat)
     z = np.where(use, (Oc - Ec) / np.sqrt(scale), 0.0)
     top = zip(*np.unravel_index(np.argsort(-np.abs(z), axis=None)[:3], z.shape), strict=True)
     where = "; ".join(f"{fl.types[groups[i] // R]}/{fl.regions[groups[i] % R]} {h:02d}h: logs {Oc[i, h] / Tc[i, h]:.2f}"
@@ -315,15 +283,6 @@ def _transition_checks(fl: _Fleet, P, Y, t, g, pos):
     return checks, ax.figure
 
 
-def _holm(checks: list[Check], alpha: float) -> list[Check]:
-    """Holm's step-down method: the i-th smallest of m p-values is rejected if it and all below are <= alpha/(m-i+1)."""
-    out, run, go, m = list(checks), 0.0, True, len(checks)
-    for i, j in enumerate(np.argsort([c.p_value for c in checks], kind="stable")):
-        run, go = max(run, min(1.0, (m - i) * checks[j].p_value)), go and checks[j].p_value <= alpha / (m - i)
-        out[j] = replace(checks[j], verdict="rejected" if go else "accepted", holm_p=run)
-    return out
-
-
 def goodness_of_fit(config: Config, telemetry: Any, held_out: Collection[str] | None = None, *, alpha: float = 0.05,
                     seed: int = 0, replicas: int = 4, draws: int = 499) -> GoodnessReport:
     """Judge the fleet model of ``config`` against ``telemetry`` (``.intervals`` and/or
@@ -391,7 +350,7 @@ def goodness_of_fit(config: Config, telemetry: Any, held_out: Collection[str] | 
             checks.append(share)
         found, figures["transition-calibration"] = _transition_checks(fl, P, Y, t, g, pos)
         checks += found
-    checks, how = _holm(checks, alpha), f"family-wise level {alpha:g}, Holm's method over {len(checks)} checks"
+    checks, how = holm(checks, alpha), f"family-wise level {alpha:g}, Holm's method over {len(checks)} checks"
     bad = sorted((c for c in checks if c.verdict == "rejected"), key=lambda c: c.p_value)
     line = (f"the model is rejected: {bad[0].name} at {bad[0].where or 'every cell'} (p={bad[0].p_value:.3g}, "
             f"Holm-adjusted {bad[0].holm_p:.3g}; {how})" if bad else

@@ -8,8 +8,12 @@ Starting from the state seen at the first check-in (q = 0 or 1), the composed ma
 probability of the state seen at the next; the log-likelihood is the sum over all gaps
 (conditional on each device's first check-in). It is maximised over the hourly p and d of
 each (device type, region, chain), weekday and weekend hours together (a gap may cross
-midnight), with scipy's L-BFGS-B on log d and logit p, using the exact gradient (one forward
-and one backward pass over the grid pieces of every gap at once, vectorised). Intervals:
+midnight), with scipy's L-BFGS-B on log d and logit p, using the exact gradient. The gaps are
+first grouped into classes of equal likelihood (:mod:`fleetsim.fit.gapclasses`: pattern of
+cells, steps covered, states, offsets within their step binned), so an evaluation costs a few
+operations per class rather than a pass over every grid piece of every gap;
+:func:`gap_layout` and :func:`chain_loglik` keep the likelihood over every gap, against which
+the classes are tested. Intervals:
 95% Wald intervals on the logit / log scale from the observed information (the inverse of
 the numerically differentiated gradient's Jacobian, i.e. the Hessian), mapped back.
 
@@ -31,6 +35,7 @@ from scipy import optimize, special
 
 from ..config import SIGNALS
 from ..signals import STEP_S
+from .gapclasses import class_hessian, class_loglik, gap_classes, gap_geometry, one_blas_thread
 from .rates import ESTIMATE_COLUMNS, LEVEL, hour_ranges
 from .stats import DAY_KINDS, DEFAULT_WEEKEND, MARGINAL, region_zones, step_calendar
 
@@ -138,11 +143,12 @@ def _hessian(fun: Callable[[np.ndarray], np.ndarray], theta: np.ndarray, step: f
     return (out + out.T) / 2
 
 
-def _fit_chain(layout: dict, x: np.ndarray, min_changes: int, level: float) -> tuple[dict, list[str]]:
-    """One chain of one group: per cell p, d and intervals, counts and pooling labels."""
-    first = layout["first"]
+def _fit_chain(geometry: dict, x: np.ndarray, min_changes: int, level: float) -> tuple[dict, list[str]]:
+    """One chain of one group: per cell p, d and intervals, counts and pooling labels, from
+    the gaps' classes (:mod:`fleetsim.fit.gapclasses`)."""
+    first = geometry["first"]
     x0, x1 = x[first], x[first + 1]
-    cell0 = layout["cell0"]
+    cell0 = geometry["cell0"]
     up = np.bincount(cell0, (~x0 & x1), minlength=_CELLS)
     down = np.bincount(cell0, (x0 & ~x1), minlength=_CELLS)
     cell_param, labels = _ties(up + down, min_changes)
@@ -152,21 +158,22 @@ def _fit_chain(layout: dict, x: np.ndarray, min_changes: int, level: float) -> t
     free_gaps = np.maximum(np.bincount(cell_param, gaps, n_free), 1)
     p0 = np.clip(np.bincount(cell_param, on, n_free) / free_gaps, 0.02, 0.98)
     # Start d where a short gap h shows a change with probability 2 p h / d (stationary chain).
-    span = np.sum([h.sum() for _, h in layout["pieces"]]) / max(first.size, 1)
     changed = np.bincount(cell_param, (up + down).astype(float), n_free) / free_gaps
-    d0 = np.clip(2 * p0 * span / np.maximum(changed, 1e-6), 120.0, 10 * 86400.0)
+    d0 = np.clip(2 * p0 * geometry["span_s"] / np.maximum(changed, 1e-6), 120.0, 10 * 86400.0)
     theta0 = np.concatenate([special.logit(p0), np.log(d0)])
+    classes = gap_classes(geometry, x0.astype(np.int64), x1.astype(np.int64))
     scale = max(first.size, 1)
 
     def objective(theta: np.ndarray) -> tuple[float, np.ndarray]:
-        ll, grad = chain_loglik(theta, layout, x0, x1, cell_param)
-        return -ll / scale, -grad / scale
+        ll, grad = class_loglik(theta, classes, cell_param)
+        return -float(ll[0]) / scale, -grad[0] / scale
 
     bounds = [(-_LOGIT_BOUND, _LOGIT_BOUND)] * n_free + [_LOG_D_BOUNDS] * n_free
-    result = optimize.minimize(objective, theta0, jac=True, method="L-BFGS-B", bounds=bounds,
-                               options={"maxiter": 2000, "ftol": 1e-13, "gtol": 1e-9})
+    with one_blas_thread():
+        result = optimize.minimize(objective, theta0, jac=True, method="L-BFGS-B", bounds=bounds,
+                                   options={"maxiter": 2000, "ftol": 1e-13, "gtol": 1e-9})
     theta = result.x
-    info = -_hessian(lambda t: chain_loglik(t, layout, x0, x1, cell_param)[1], theta)
+    info = -class_hessian(theta, classes, cell_param)
     warnings = [] if result.success else [f"optimiser: {result.message}"]
     try:
         cov = np.linalg.inv(info)
@@ -215,13 +222,13 @@ def fit_snapshots(
             return is_weekend * 24 + hours
 
         device = pd.factorize(part["device_id"])[0]
-        layout = gap_layout(part["time_s"].to_numpy(float), device, calendar)
-        if not layout["first"].size:
+        geometry = gap_geometry(part["time_s"].to_numpy(float), device, calendar, MAX_GAP_S)
+        if not geometry["first"].size:
             warnings.append(f"{tname} in {rname}: no two check-ins of one device within a day; not fitted")
             done += len(MARGINAL)
             continue
         for chain, x in _chain_states(part).items():
-            fitted, problems = _fit_chain(layout, x, min_changes, level)
+            fitted, problems = _fit_chain(geometry, x, min_changes, level)
             warnings += [f"{tname} in {rname}, {chain}: {line}" for line in problems]
             cells = pd.DataFrame(fitted)
             cells.insert(0, "hour", np.tile(np.arange(24), 2))
@@ -253,10 +260,16 @@ def snapshot_occupancy(snapshots: pd.DataFrame,
         k = np.floor(frame["time_s"].to_numpy(float) / STEP_S).astype(np.int64)
         hours, weekend = step_calendar(zones[str(rname)], weekend_days.get(str(rname), DEFAULT_WEEKEND),
                                        int(k.min()), int(k.max()))
-        base = pd.DataFrame({"device_type": frame["device_type"].astype(str).to_numpy(), "region": str(rname),
-                             "day": np.array(DAY_KINDS)[weekend[k - k.min()]], "hour": hours[k - k.min()]})
+        codes, names = pd.factorize(frame["device_type"].astype(str), sort=True)
+        cell = codes * _CELLS + weekend[k - k.min()] * 24 + hours[k - k.min()]  # counted, not grouped: fast
+        size = len(names) * _CELLS
+        seen = np.bincount(cell, minlength=size)
+        where = np.flatnonzero(seen)
         for chain, x in _chain_states(frame).items():
-            parts.append(base.assign(chain=chain, occupancy=x.astype(float)))
+            parts.append(pd.DataFrame({
+                "device_type": np.asarray(names, dtype=object)[where // _CELLS], "region": str(rname), "chain": chain,
+                "day": np.array(DAY_KINDS)[where % _CELLS // 24], "hour": where % 24,
+                "occupancy": np.bincount(cell, x, minlength=size)[where] / seen[where]}))
     table = pd.concat(parts, ignore_index=True)
     keys = ["device_type", "region", "chain", "day", "hour"]
-    return table.groupby(keys, sort=True)["occupancy"].mean().reset_index()
+    return table.sort_values(keys, kind="stable").reset_index(drop=True)
