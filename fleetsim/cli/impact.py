@@ -15,11 +15,7 @@ import typer
 from ..errors import FleetsimError
 from .console import SetOpt, fail, one_line, progress_bar
 
-__all__ = ["impact", "CAUTION"]
-
-CAUTION = ("the task, data and model are invented stand-ins for a team's own: read the gaps between groups, not "
-           "the accuracies; it is a model: fit the fleet from real telemetry and follow your organisation's "
-           "review before changing a live fleet")
+__all__ = ["impact"]
 
 
 def _check_fleet(fleet: Any, participations: Any, where: Path) -> None:
@@ -78,11 +74,13 @@ def impact(
             result = model_impact(run.config, run.participations, run.rounds, fleet, run.seed,
                                   on_progress=lambda done, total: tick(done))
         settings = run.config.impact.model_dump(mode="json") if run.config.impact is not None else None
-        record = {"impact": result.summary, "seed": run.seed, "settings": settings, "caution": CAUTION}
+        figures = {key: value for key, value in result.summary.items() if key != "caution"}
+        caution = result.summary["caution"]
+        record = {"impact": figures, "seed": run.seed, "settings": settings, "caution": caution}
         paths = write_impact(run.folder, record, {"impact_curves": result.curves, "impact_final": result.final})
     except FleetsimError as exc:
         fail(exc)
     for line in _brief(result.summary):
         typer.echo(one_line(line))
-    typer.echo(f"caution: {CAUTION}")
+    typer.echo(f"caution: {caution}")
     typer.echo(f"wrote {', '.join(str(p) for p in paths)}")

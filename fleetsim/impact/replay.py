@@ -27,7 +27,8 @@ __all__ = ["ImpactResult", "model_impact", "IMPACT_CAUTION", "GROUPINGS"]
 
 IMPACT_CAUTION = (
     "These figures come from an invented task and model trained on a simulated fleet's rounds, "
-    "not from your model or your users' data. Replace them with your own, fit the fleet from real "
+    "not from your model or your users' data: read the gaps between groups, not the accuracies. "
+    "Replace them with your own, fit the fleet from real "
     "telemetry and follow your organisation's review before a change touches a live fleet."
 )
 
