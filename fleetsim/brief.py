@@ -100,7 +100,9 @@ def _privacy_lines(privacy: dict[str, Any] | None) -> list[str]:
              f"{privacy['committed_rounds']} committed rounds")
     if not privacy["reporting_devices"]:
         return [f"privacy: no device had a report used by a committed round (epsilon 0 for every device); {claim}"]
-    where = (f" ({worst['device_type']} in {worst['region']}, {worst['participations']} reports)" if worst else "")
+    tied = f"; {worst['tied']:,} devices as many" if worst and worst.get("tied", 1) > 1 else ""
+    where = (f" ({worst['device_type']} in {worst['region']}, {worst['participations']} reports{tied})"
+             if worst else "")
     return [
         f"privacy (per device, epsilon at delta {privacy['delta']:.3g}): median {_eps(e['median'])}, worst "
         f"{_eps(e['worst'])}{where}; {claim}",

@@ -158,7 +158,8 @@ def test_summary_of_a_small_run(private_run):
     assert p["sampling_rate"] == pytest.approx(result.config.rounds.target_reports / n)
     worst = p["worst_device"]
     assert worst["participations"] == counts.max() == p["participations_max"]
-    assert counts[worst["device"]] == counts.max()
+    assert counts[worst["device"]] == counts.max() and worst["device"] == int(np.argmax(counts))
+    assert worst["tied"] == int((counts == counts.max()).sum())
     assert worst["epsilon"] == p["epsilon"]["worst"] == pytest.approx(device_epsilons([counts.max()], 1.1, 1 / n)[0])
     reported = device_epsilons(counts[counts > 0], 1.1, 1 / n)
     assert p["epsilon"]["median"] == pytest.approx(np.median(reported))

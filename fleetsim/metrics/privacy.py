@@ -248,7 +248,8 @@ class PrivacyAccount:
         i = int(np.argmax(self.participations))
         return {"device": i, "device_type": self.type_names[self.device_type[i]],
                 "region": self.region_names[self.region[i]],
-                "participations": int(self.participations[i]), "epsilon": float(self.epsilon[i])}
+                "participations": int(self.participations[i]), "epsilon": float(self.epsilon[i]),
+                "tied": int(np.count_nonzero(self.participations == self.participations[i]))}
 
 
 def _figures(counts: np.ndarray, eps: np.ndarray, claim: float) -> dict[str, Any]:

@@ -53,8 +53,10 @@ def _worst_words(worst: dict[str, Any] | None) -> str:
     if not worst:
         return ""
     reports = int(worst["participations"])
+    tied = int(worst.get("tied", 1))
+    others = f"; {tied - 1:,} other devices used as often" if tied > 1 else ""
     return (f" (device {int(worst['device'])}, a {worst['device_type']} in {worst['region']}, "
-            f"{reports:,} report{'s' if reports != 1 else ''} used)")
+            f"{reports:,} report{'s' if reports != 1 else ''} used{others})")
 
 
 def _answer(p: dict[str, Any]) -> str:
