@@ -19,7 +19,7 @@ from .console import FileArg, SetOpt, fail, progress_bar, read_config, seed_opti
 
 __all__ = ["telemetry", "CAUTION"]
 
-CAUTION = ("caution: synthetic telemetry drawn from the fleet model, a stand-in for real logs and a measurement "
+CAUTION = ("synthetic telemetry drawn from the fleet model, a stand-in for real logs and a measurement "
            "of no fleet; real telemetry needs the organisation's privacy review before it is collected or used, "
            "and the model should be fitted from it before it guides a change to a live fleet")
 """The line printed after every write, and kept in the folder's telemetry.json."""
@@ -94,4 +94,4 @@ def telemetry(
         fail(exc)
     typer.echo(f"wrote {out}/intervals.{encoding} ({counts['intervals']:,} rows), snapshots.{encoding} "
                f"({counts['snapshots']:,} rows), traits.{encoding} ({counts['devices']:,} devices), telemetry.json")
-    typer.echo(CAUTION)
+    typer.echo(f"caution: {CAUTION}")
