@@ -9,6 +9,11 @@ w Z + sqrt(1 - w^2) N(0, 1) with w = exp(-(t - t0) / tau). A device with no hist
 Z ~ N(0, 1). So a device left alone shows the documented law at every look, and two looks
 close together see nearly the same level (tasks feed their levels back, below).
 
+The fresh N(0, 1) of a look at a check-in is a keyed draw (:mod:`fleetsim.keyed`): the
+runtime hands it in, from the ``checkin`` stream at (device, the index of the check-in tick,
+lane ``BATTERY_LANE`` of :mod:`fleetsim.runtime`), so a device's levels depend only on its
+own looks and tasks (a ``numpy.random.Generator`` handed in draws in order).
+
 During a task the level moves physically (:mod:`fleetsim.client`); at the participation's
 end the level reached is recorded as the score that gives it under the law of the charging
 state then, so the next look starts from it.
@@ -24,6 +29,7 @@ import numpy as np
 from scipy import special
 
 from .config import Config
+from .keyed import OrderedDraws, TickDraws, as_draws
 
 __all__ = ["BatteryState", "beta_params", "battery_path", "battery_crossing", "Z_GRID"]
 
@@ -79,10 +85,13 @@ class BatteryState:
         lo, hi = flat[at], flat[at + 1]
         return lo + (x - i) * (hi - lo)
 
-    def look(self, devices: np.ndarray, t: np.ndarray, charging: np.ndarray, rng: np.random.Generator) -> np.ndarray:
-        """The level (%) each device shows at a look at ``t`` with this charging state; recorded."""
+    def look(self, devices: np.ndarray, t: np.ndarray, charging: np.ndarray,
+             draws: TickDraws | OrderedDraws | np.random.Generator | np.ndarray) -> np.ndarray:
+        """The level (%) each device shows at a look at ``t`` with this charging state (the fresh
+        normal: ``draws`` at lane 0, or ``draws`` itself, one normal per device); recorded."""
         w = self._weight(devices, t)
-        z = w * self.score[devices] + np.sqrt(1.0 - w * w) * rng.standard_normal(devices.size)
+        fresh = draws if isinstance(draws, np.ndarray) else as_draws(draws).normal(devices, t, 0)
+        z = w * self.score[devices] + np.sqrt(1.0 - w * w) * fresh
         self.score[devices] = z
         self.since[devices] = t
         return self._level(self.group[devices], charging, z)

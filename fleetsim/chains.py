@@ -3,6 +3,15 @@
 :class:`SignalState` keeps, per device and chain (:data:`fleetsim.signals.CHAINS`), the last
 time the run looked and the on-probability then (0/1 once seen); :meth:`SignalState.paths`
 follows chains exactly through a task (:meth:`fleetsim.signals.SignalTables.next_flip`).
+
+Draws (:mod:`fleetsim.keyed`; a ``numpy.random.Generator`` handed in instead draws in order):
+a look at chain c of a device at a check-in tick uses the ``checkin`` stream at (device, the
+tick's index, lane c); a task's paths use the ``task`` stream at (device, the index of the
+check-in tick that started the participation, lane): lane ``1 + c`` for the state of chain c
+at the check-in when it was not seen then, lane ``FLIP_LANE + c * 2**24 + j`` for the
+exponential behind the chain's j-th change (j from 0), lane ``CRASH_LANE`` for the crash
+(:func:`fleetsim.client.resolve_cohort`). A look may be handed its uniforms instead of a
+draw source (the runtime draws every lane of a check-in from one keyed prefix).
 """
 
 from __future__ import annotations
@@ -11,9 +20,19 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .keyed import OrderedDraws, TickDraws, as_draws
 from .signals import CHAINS, SETTLED, SignalTables
 
 __all__ = ["SignalState", "Paths"]
+
+Draws = TickDraws | OrderedDraws | np.random.Generator
+"""A draw source: keyed by check-in ticks, or in order from a Generator (:mod:`fleetsim.keyed`)."""
+
+CRASH_LANE = 0
+"""Lane of the ``task`` stream behind a participation's crash time."""
+
+FLIP_LANE = 2**32
+"""First lane of the ``task`` stream's chain changes (chain c, change j: FLIP_LANE + c * 2**24 + j)."""
 
 
 @dataclass
@@ -60,9 +79,10 @@ class SignalState:
         t_eval = np.maximum(t, t_from)
         return self.tables.on_probability(self.group[devices], chain, t_from, self.q_last[chain][devices], t_eval)
 
-    def observe(self, devices: np.ndarray, chain: int, t: np.ndarray, rng: np.random.Generator) -> np.ndarray:
-        """Sample whether ``chain`` is on for ``devices`` at times ``t``; record it."""
-        on = rng.random(devices.size) < self._probability(devices, chain, t)
+    def observe(self, devices: np.ndarray, chain: int, t: np.ndarray, draws: Draws | np.ndarray) -> np.ndarray:
+        """Sample whether ``chain`` is on for ``devices`` at times ``t`` (uniforms of ``draws`` at
+        lane ``chain``, or ``draws`` itself, one uniform per device); record it."""
+        on = _uniforms(draws, devices, t, chain) < self._probability(devices, chain, t)
         self.t_last[chain][devices] = t
         self.q_last[chain][devices] = on
         return on
@@ -80,11 +100,13 @@ class SignalState:
         return q.reshape(m, n)
 
     def observe_chains(self, devices: np.ndarray, chains: list[int], t: np.ndarray,
-                       rng: np.random.Generator) -> np.ndarray:
-        """Sample several chains of ``devices`` at times ``t`` at once, [len(chains), n]; record them."""
+                       draws: Draws | np.ndarray) -> np.ndarray:
+        """Sample several chains of ``devices`` at times ``t`` at once, [len(chains), n] (lane: the
+        chain; or ``draws`` itself, the uniforms [len(chains), n]); record them."""
         if not chains:
             return np.zeros((0, devices.size), dtype=bool)
-        on = rng.random((len(chains), devices.size)) < self._probabilities(devices, chains, t)
+        lanes = np.asarray(chains, dtype=np.int64)[:, None]
+        on = _uniforms(draws, devices, t, lanes) < self._probabilities(devices, chains, t)
         for i, c in enumerate(chains):
             self.t_last[c][devices] = t
             self.q_last[c][devices] = on[i]
@@ -108,7 +130,7 @@ class SignalState:
         covers = self.tables.covers[self.group[devices]].T  # [S, n]
         return chains[1:] | (chains[SETTLED][None, :] & covers)
 
-    def paths(self, devices: np.ndarray, t0: np.ndarray, t_stop: np.ndarray, rng: np.random.Generator,
+    def paths(self, devices: np.ndarray, t0: np.ndarray, t_stop: np.ndarray, draws: Draws,
               own: list[int] | None = None) -> Paths:
         """The chains' exact paths for ``devices`` from ``t0`` to ``t_stop`` (s): the settled
         chain (when the fleet has one) and the own chains in ``own`` (default: all).
@@ -116,7 +138,8 @@ class SignalState:
         The states at ``t0`` are drawn given the last looks (exactly the recorded 0/1 for a
         chain seen at ``t0``); nothing is recorded here. A chain not followed keeps its last
         look (the chains are independent) and shows as off with no changes in the paths;
-        :attr:`Paths.followed` says which were."""
+        :attr:`Paths.followed` says which were. Every draw is keyed by the tick of ``t0`` (the
+        check-in) and a lane of the chain (and change), see the module doc."""
         n = devices.size
         tables = self.tables
         group = self.group[devices]
@@ -125,13 +148,14 @@ class SignalState:
         followed[SETTLED] = tables.has_settled
         state0 = np.zeros((len(CHAINS), n), dtype=bool)
         t0 = np.asarray(t0, dtype=float)
+        at = as_draws(draws).at(devices, t0)  # every lane of a device's participation from one prefix
         for c in np.flatnonzero(followed):
             # A chain seen at t0 (as at a check-in) is in its recorded state; the others are drawn.
             state0[c] = self.q_last[c][devices] > 0.5
             unseen = np.flatnonzero(self.t_last[c][devices] != t0)
             if unseen.size:
                 q = self._probability(devices[unseen], int(c), t0[unseen])
-                state0[c, unseen] = rng.random(unseen.size) < q
+                state0[c, unseen] = at.uniform(unseen, 1 + int(c)) < q
         flips: list[np.ndarray] = []
         # Flat [C * n] arrays, chain by chain (the layout of state0.reshape(-1)), made once.
         state = state0.reshape(-1).copy()
@@ -140,9 +164,11 @@ class SignalState:
         groups = np.tile(group, len(CHAINS))
         stops = np.tile(np.asarray(t_stop, dtype=float), len(CHAINS))
         active = np.repeat(followed, n)
+        who = np.tile(np.arange(n), len(CHAINS))  # each entry's position among the devices
+        lane0 = FLIP_LANE + chain_index * 2**24
         while active.any():
             idx = np.flatnonzero(active)
-            e = rng.exponential(1.0, size=idx.size)
+            e = at.exponential(who[idx], lane0[idx] + len(flips))  # change number len(flips) of each
             when = tables.next_flip(groups[idx], chain_index[idx], now[idx], state[idx], e)
             step = np.full(len(CHAINS) * n, np.inf)
             flipped = when <= stops[idx]
@@ -155,3 +181,10 @@ class SignalState:
         stacked = np.stack(flips, axis=2) if flips else np.full((len(CHAINS), n, 0), np.inf)
         return Paths(t0=np.asarray(t0, dtype=float), state0=state0, flips=stacked, t_stop=np.asarray(t_stop),
                      followed=followed)
+
+
+def _uniforms(draws: Draws | np.ndarray, devices: np.ndarray, t: np.ndarray, lane: np.ndarray | int) -> np.ndarray:
+    """The uniforms of a look: ``draws`` itself when it holds them, else drawn at ``lane``."""
+    if isinstance(draws, np.ndarray):
+        return draws
+    return as_draws(draws).uniform(devices, t, lane)

@@ -18,6 +18,11 @@ The earliest interruption before the task's end is the dropout, with its cause a
 with secure aggregation the first interruption after it decides whether the device answers
 the unmasking. Disruptions apply by the factor in force when the task starts, for its whole
 length.
+
+Every draw of a participation (the crash time, the chains' states and changes) is keyed by
+the device and the index of the check-in tick that started it (:mod:`fleetsim.keyed`, the
+``task`` stream; lanes in :mod:`fleetsim.chains`): a device that checks in at the same tick
+in two runs, with the same history, has the same task.
 """
 
 from __future__ import annotations
@@ -27,10 +32,11 @@ from dataclasses import dataclass
 import numpy as np
 
 from .battery import battery_crossing, battery_path
-from .chains import Paths, SignalState
+from .chains import CRASH_LANE, Draws, Paths, SignalState
 from .config import SIGNALS, Config, Disruption, Workload
 from .config.protocol import SecureAggregation
 from .events import CAUSES, PHASES
+from .keyed import as_draws
 
 __all__ = ["Cohort", "resolve_cohort", "disruption_factor", "task_times"]
 
@@ -279,7 +285,7 @@ def resolve_cohort(
     charging: np.ndarray,
     battery_pct: np.ndarray,
     signals: SignalState,
-    rng: np.random.Generator,
+    draws: Draws,
     type_names: tuple[str, ...],
     region_names: tuple[str, ...],
     wait_s: float = 0.0,
@@ -292,6 +298,7 @@ def resolve_cohort(
     at once); ``charging`` and ``battery_pct`` are as seen at check-in; ``signals`` holds the
     chains' last looks, from which each device's path is followed, up to ``wait_s`` past the
     task (secure aggregation: a device waits for the close, then answers the unmasking).
+    ``draws``: the ``task`` stream (keyed by device and check-in tick; a Generator draws in order).
     """
     work = config.workload
     n = device.size
@@ -306,13 +313,12 @@ def resolve_cohort(
     ends = np.cumsum(durations, axis=0)
     task_s = ends[-1]
     hazard = work.crash_rate / 3600.0 * crash  # crash_rate is per hour
-    crash_draw = rng.exponential(1.0, size=n)
     with np.errstate(divide="ignore"):
-        crash_at = np.where(hazard > 0, crash_draw / hazard, np.inf)
+        crash_at = np.where(hazard > 0, as_draws(draws).exponential(device, checkin_s, CRASH_LANE) / hazard, np.inf)
     # Nothing of the signals matters after the task (and any wait and unmasking) has certainly ended.
     ends_by = np.minimum(np.minimum(task_s + wait_s + unmask_s, crash_at), work.execution_limit)
     followed = [1 + SIGNALS.index(name) for name in set(work.requires) | {"charging"}]
-    paths = signals.paths(device, checkin_s, accept_s + ends_by, rng, followed)
+    paths = signals.paths(device, checkin_s, accept_s + ends_by, draws, followed)
     times, on = _signal_events(paths, signals, device)
     rel = times - accept_s[:, None]
     candidates = [np.full(n, np.inf)] * len(CAUSES)

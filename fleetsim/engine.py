@@ -3,11 +3,17 @@
 The engine builds the run's :class:`fleetsim.record.RunRecord` and hands it to a
 :class:`fleetsim.result.Result`, which computes the figures on demand.
 
-Random streams (each a ``numpy.random.Generator`` derived from the seed and its name, see
-:func:`fleetsim.fleet.stream`): ``fleet`` (device traits and check-in phases), ``checkin``
-(chain states seen at check-ins), ``battery`` (battery scores at check-in), ``task``
-(chain paths and crashes during tasks), ``policy`` (a policy's own draws) and ``census``
-(the measurement of eligible devices; it never changes the run).
+Random streams, each derived from the seed and its name. Drawn in order from a
+``numpy.random.Generator`` (:func:`fleetsim.fleet.stream`): ``fleet`` (device traits and
+check-in phases, once for the whole fleet in device order), ``pacing`` (each device's pacing
+offset, once), ``census`` (the measurement of eligible devices; it never changes the run)
+and ``policy`` (the ``rng`` a policy's hooks are handed). Keyed (:mod:`fleetsim.keyed`, every
+draw a pure function of the seed, the stream, the device, a check-in tick of the device and
+a lane; :data:`fleetsim.runtime.KEYED_STREAMS`): ``checkin`` (chain states seen at check-ins,
+by the tick looked at), ``battery`` (battery scores at check-in, likewise), ``task`` (chain
+paths and crashes during a task, by the tick of the check-in that started it) and
+``policy`` (the built-in ``lottery``'s keys, per device and tick). Two runs of one seed then
+see the same draws for a device wherever the device's own history agrees.
 """
 
 from __future__ import annotations
@@ -26,11 +32,12 @@ from .desk import Desk
 from .errors import FleetsimError
 from .events import EventLog
 from .fleet import Fleet, sample_fleet, stream
+from .keyed import KeyedStream
 from .policies import make_policy
 from .record import RunRecord
 from .replay import Replay, ReplaySignals
 from .result import Result
-from .runtime import FleetRuntime
+from .runtime import KEYED_STREAMS, FleetRuntime
 from .server import RoundServer
 from .signals import build_signal_tables
 from .units import format_duration, format_instant
@@ -82,7 +89,6 @@ def simulate(
     policies = [make_policy(job.config.selection.policy, job.config.selection.params) for job in jobs]
     for job, policy in zip(jobs, policies, strict=True):
         check_memory(job.config, policy.window_s, source="config")
-    rngs = {name: stream(seed, name) for name in STREAMS}
     horizon_s = float(config.horizon.duration)
     fleet = sample_fleet(config, seed, None if replay is None else _replay_pairs(config, replay, horizon_s))
     tail_s = max(job.config.rounds.selection_timeout + job.config.rounds.report_deadline for job in jobs) + 2 * 3600.0
@@ -93,7 +99,8 @@ def simulate(
     if replay is not None:  # the logs hold the signals as they were: no settled state to derive
         tables = dataclasses.replace(tables, covers=np.zeros_like(tables.covers), has_settled=False)
         signals = ReplaySignals(tables, fleet.group, replay)
-    runtime = FleetRuntime(jobs[0].config, fleet, tables, rngs, paced=paced, signals=signals)
+    rngs, keys = {n: stream(seed, n) for n in STREAMS}, {n: KeyedStream(seed, n) for n in KEYED_STREAMS}
+    runtime = FleetRuntime(jobs[0].config, fleet, tables, rngs, paced=paced, signals=signals, keys=keys)
     views = [runtime] if len(jobs) == 1 else [runtime.for_workload(job.config) for job in jobs]
     logs = [EventLog() for _ in jobs]
     servers = [RoundServer(job.config, view, policy, log, rngs)

@@ -1,8 +1,10 @@
 """Sample a fleet of devices from its device types and regions, as a struct of arrays.
 
-Random streams: every component draws from its own named ``numpy.random.Generator``
-derived from the run seed (:func:`stream`), so the fleet a seed gives does not depend on the
-round settings, the policy or the horizon (common random numbers across a study's cells).
+Random streams: the fleet is drawn from its own named ``numpy.random.Generator`` derived from
+the run seed (:func:`stream`), once for the whole fleet in device order, so the fleet a seed
+gives does not depend on the round settings, the policy or the horizon (common random
+numbers across a study's cells). What devices do later is drawn keyed per device and
+check-in tick (:mod:`fleetsim.keyed`, listed in :mod:`fleetsim.engine`).
 """
 
 from __future__ import annotations

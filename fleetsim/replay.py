@@ -21,7 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .chains import Paths, SignalState
+from .chains import Draws, Paths, SignalState
 from .config import SIGNALS
 from .signals import CHAINS, SETTLED, SignalTables
 
@@ -176,7 +176,7 @@ class ReplaySignals(SignalState):
     def _probability(self, devices: np.ndarray, chain: int, t: np.ndarray) -> np.ndarray:
         return self._on(devices, chain, t).astype(float)
 
-    def observe(self, devices: np.ndarray, chain: int, t: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    def observe(self, devices: np.ndarray, chain: int, t: np.ndarray, draws: Draws | np.ndarray) -> np.ndarray:
         return self._on(devices, chain, t)
 
     def _probabilities(self, devices: np.ndarray, chains: list[int], t: np.ndarray) -> np.ndarray:
@@ -184,13 +184,13 @@ class ReplaySignals(SignalState):
             np.zeros((0, devices.size)))
 
     def observe_chains(self, devices: np.ndarray, chains: list[int], t: np.ndarray,
-                       rng: np.random.Generator) -> np.ndarray:
+                       draws: Draws | np.ndarray) -> np.ndarray:
         return self._probabilities(devices, chains, t) > 0.5
 
     def record(self, devices: np.ndarray, chain: int, t: np.ndarray, on: np.ndarray) -> None:
         """The logs are what they are: nothing a task did changes them."""
 
-    def paths(self, devices: np.ndarray, t0: np.ndarray, t_stop: np.ndarray, rng: np.random.Generator,
+    def paths(self, devices: np.ndarray, t0: np.ndarray, t_stop: np.ndarray, draws: Draws,
               own: list[int] | None = None) -> Paths:
         """The logged states at ``t0`` and every logged change up to ``t_stop``."""
         n = devices.size

@@ -12,6 +12,15 @@ resting, every required signal is on (its chains sampled lazily, see :mod:`fleet
 the settled chain first, then the own chain of each required signal the settled state does
 not hold on), and its battery level seen at check-in (:mod:`fleetsim.battery`: its law for
 the charging state, with memory of the last look) is at or above the workload's minimum.
+
+Draws (:mod:`fleetsim.keyed`): every look at a device is keyed by the device and the index k
+of the tick looked at (tick times are computed as ``k * checkin_every + phase``, the same
+float whatever window found them), in the ``checkin`` stream: lane c for chain c, lane
+``BATTERY_LANE`` for the battery score; a participation's in ``task`` by its check-in tick
+(:mod:`fleetsim.client`). Every lane of a check-in is drawn at once (one keyed prefix per
+tick), whether or not the look needs it: a draw left unused changes nothing. Given keyed
+streams (``keys``) the draws are :class:`TickDraws`; without, they come in order from the
+``rngs`` generators of the same names.
 """
 
 from __future__ import annotations
@@ -25,24 +34,37 @@ from .chains import SignalState
 from .client import Cohort, task_times
 from .config import SIGNALS, Config
 from .fleet import Fleet
-from .signals import SETTLED, SignalTables
+from .keyed import KeyedStream, OrderedDraws, TickDraws, to_normal
+from .signals import CHAINS, SETTLED, SignalTables
 
-__all__ = ["FleetRuntime"]
+__all__ = ["FleetRuntime", "KEYED_STREAMS"]
 
 _CHARGING = SIGNALS.index("charging")
+
+KEYED_STREAMS = ("checkin", "task", "policy")
+"""The streams whose draws are about a device and keyed by its check-in ticks."""
+
+BATTERY_LANE = len(CHAINS)
+"""Lane of the ``checkin`` stream behind the battery score seen at a check-in (lane c < it: chain c)."""
+
+_LOOK_LANES = np.arange(len(CHAINS) + 1)[:, None]
 
 
 class FleetRuntime:
     """Dynamic per-device state and the queries the server makes of the fleet."""
 
     def __init__(self, config: Config, fleet: Fleet, tables: SignalTables, rngs: dict[str, np.random.Generator],
-                 paced: bool | None = None, signals: SignalState | None = None):
+                 paced: bool | None = None, signals: SignalState | None = None,
+                 keys: dict[str, KeyedStream] | None = None):
         self.config = config
         self.fleet = fleet
         self.tables = tables
         self.rngs = rngs
         n = fleet.size
         self.checkin_every = config.rounds.checkin_every
+        self.draws: dict[str, TickDraws | OrderedDraws] = {
+            name: TickDraws(keys[name], fleet.checkin_phase_s, self.checkin_every) if keys is not None
+            else OrderedDraws(rngs[name]) for name in KEYED_STREAMS if keys is not None or name in rngs}
         self.order = np.argsort(fleet.checkin_phase_s, kind="stable")
         self.sorted_phase = fleet.checkin_phase_s[self.order]
         self.free_at = np.full(n, -np.inf)
@@ -109,22 +131,21 @@ class FleetRuntime:
             b = min(end, a + period)
             lo = a % period
             hi = lo + (b - a)
-            k = int(np.floor(a / period))
+            k = round((a - lo) / period)  # the period a lies in, as lo has it
             order, phases = index(k)
             i0 = np.searchsorted(phases, lo, side="left")
-            # Each tick's offset from a, (phase - lo) mod period, without the float remainder: it
-            # is phase - lo for the phases from lo up (in [0, period)) and phase - lo + period for
-            # the wrapped ones (in (-period, 0)), the remainder's own values bit for bit.
+            # Each tick's time is k * period + phase: the same float whichever window finds the
+            # tick (keyed draws and the last looks then agree between runs to the bit).
             if hi <= period:
                 i1 = np.searchsorted(phases, hi, side="left")
-                picked, offset = order[i0:i1], phases[i0:i1] - lo
+                picked, at = order[i0:i1], k * period + phases[i0:i1]
             else:
                 order_next, phases_next = index(k + 1)  # ticks past the period's end: its next tick
                 i1 = np.searchsorted(phases_next, hi - period, side="left")
                 picked = np.concatenate([order[i0:], order_next[:i1]])
-                offset = np.concatenate([phases[i0:] - lo, (phases_next[:i1] - lo) + period])
+                at = np.concatenate([k * period + phases[i0:], (k + 1) * period + phases_next[:i1]])
             devices.append(picked)
-            times.append(a + offset)
+            times.append(at)
             a = b
         if len(devices) == 1:
             return devices[0], times[0]
@@ -204,11 +225,12 @@ class FleetRuntime:
         own chains of the other signals that matter (required, and charging) in one pass: a
         chain looked at but not needed (its signal held on by the settled state) is still a
         true look at an independent chain, so the run stays exact."""
-        rng = self.rngs["checkin"]
+        # Every lane of each check-in at once, from one keyed prefix per tick: [lane, n].
+        u = self.draws["checkin"].at(devices, times).uniform(None, _LOOK_LANES)
         signals = self.signals
         n = devices.size
         if self.tables.has_settled:
-            settled = signals.observe(devices, SETTLED, times, rng)
+            settled = signals.observe(devices, SETTLED, times, u[SETTLED])
         else:
             settled = np.zeros(n, dtype=bool)
         covers = self.tables.covers[self.group[devices]]  # [n, S]
@@ -220,11 +242,12 @@ class FleetRuntime:
             held = settled & covers[:, first]
             look = np.flatnonzero(~held)
             on[first] = held.copy()
-            on[first][look] = signals.observe(devices[look], 1 + first, times[look], rng)
+            on[first][look] = signals.observe(devices[look], 1 + first, times[look], u[1 + first][look])
             ok = on[first].copy()
         live = np.flatnonzero(ok)
         rest = [s for s in wanted if s not in on]
-        own = signals.observe_chains(devices[live], [1 + s for s in rest], times[live], rng)
+        lanes = [1 + s for s in rest]
+        own = signals.observe_chains(devices[live], lanes, times[live], u[lanes][:, live])
         for i, s in enumerate(rest):
             on[s] = np.zeros(n, dtype=bool)
             on[s][live] = own[i] | (settled[live] & covers[live, s])
@@ -232,7 +255,7 @@ class FleetRuntime:
             ok &= on[s]
         live = np.flatnonzero(ok)
         charging = on[_CHARGING][live]
-        battery = self.battery.look(devices[live], times[live], charging, self.rngs["battery"])
+        battery = self.battery.look(devices[live], times[live], charging, to_normal(u[BATTERY_LANE][live]))
         ok = battery >= self.min_battery
         return live[ok], battery[ok], charging[ok]
 

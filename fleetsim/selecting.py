@@ -127,7 +127,7 @@ class Selector:
         """The check-ins as a policy sees them (per-device traits gathered on demand)."""
         fleet = self.runtime.fleet
         return Candidates(devices, times, battery, charging, self.runtime.traits(), fleet.type_names,
-                          fleet.region_names)
+                          fleet.region_names, self.runtime.draws.get("policy"))
 
     def _check_choice(
         self, chosen: np.ndarray, devices: np.ndarray, needed: int, in_round: np.ndarray, index: int, t: float

@@ -201,7 +201,7 @@ class RoundServer:
         }
         return resolve_cohort(
             self.config, arrays, devices, accept_s, checkin_s, charging, battery, self.runtime.signals,
-            self.rngs["task"], fleet.type_names, fleet.region_names, wait_s,
+            self.runtime.draws["task"], fleet.type_names, fleet.region_names, wait_s,
         )
 
     def _close_at(self, opened: float, selected_at: float, report_at: np.ndarray, enough: bool) -> tuple[float, bool]:

@@ -24,7 +24,7 @@ pandas nor anything of fleetsim, so importing it stays cheap.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, ClassVar
+from typing import TYPE_CHECKING, Any, ClassVar
 
 import numpy as np
 
@@ -46,7 +46,8 @@ class Candidates:
     ``region``, ``samples``, ``predicted_s``, ``last_participation_s`` (-inf for a device
     that never took part), ``participations``, ``type_names``, ``region_names``. In the set
     handed to :meth:`SelectionPolicy.rank` eligibility is not known yet: ``battery_pct`` is
-    NaN and ``charging`` False there.
+    NaN and ``charging`` False there. :meth:`keyed` gives random numbers tied to the
+    check-ins themselves (the same check-in draws the same number in every run of a seed).
     """
 
     _GATHERED = ("device_type", "region", "samples", "predicted_s", "last_participation_s", "participations")
@@ -60,6 +61,7 @@ class Candidates:
         fleet_arrays: dict[str, np.ndarray],
         type_names: tuple[str, ...],
         region_names: tuple[str, ...],
+        keyed_draws: Any = None,
     ):
         self.device = device
         self.checkin_s = checkin_s
@@ -68,6 +70,23 @@ class Candidates:
         self.type_names = type_names
         self.region_names = region_names
         self._fleet_arrays = fleet_arrays
+        self._keyed_draws = keyed_draws
+
+    def keyed(self, lane: int = 0, since_s: float | None = None) -> np.ndarray | None:
+        """One uniform number in [0, 1) per check-in, a pure function of the run's seed, the
+        device, a check-in tick of the device and ``lane`` (the ``policy`` stream, keyed: see
+        docs/policies.md), or None for candidates not built by the engine.
+
+        The tick is the check-in's own; with ``since_s``, the device's first tick at or after
+        ``since_s`` instead: ``since_s=round.now_s`` gives each device one number per window
+        whichever of its ticks in the window is shown (in :meth:`SelectionPolicy.rank` and in
+        ``choose`` alike). Draws nothing from the ``rng`` stream."""
+        draws = self._keyed_draws
+        if draws is None:
+            return None
+        if since_s is None:
+            return draws.uniform(self.device, self.checkin_s, lane)
+        return draws.uniform_from(self.device, float(since_s), lane)
 
     def __getattr__(self, name: str) -> np.ndarray:
         # Called only for attributes not yet set: gather the per-device array once (on this

@@ -3,7 +3,7 @@
 | name | idea |
 | --- | --- |
 | ``first-come`` | accept eligible check-ins in arrival order |
-| ``lottery`` | a uniform draw from each held window (ranked: random keys) |
+| ``lottery`` | a uniform draw from each held window (ranked: keyed random keys) |
 | ``quick-finish`` | the shortest predicted tasks of each held window (ranked: predicted time) |
 | ``share-quota`` | arrival order within per-type quotas that lift late in the selection |
 | ``rested-first`` | the longest-rested devices of each held window (ranked: last participation) |
@@ -33,7 +33,13 @@ class FirstCome(SelectionPolicy):
 
 class Lottery(SelectionPolicy):
     """Uniform random over a short collection window: each window's check-ins are held, then
-    ``needed`` of them are drawn without replacement."""
+    ``needed`` of them are drawn without replacement.
+
+    The draw: every device in the window gets a uniform key, keyed by the device and its
+    first check-in tick of the window (:meth:`Candidates.keyed`), and the ``needed`` lowest
+    keys win. Independent uniform keys make that a uniform draw without replacement, and the
+    same check-in gets the same key in every run of the seed. Candidates built by hand (no
+    keyed source) draw their keys from ``rng``."""
 
     name = "lottery"
     holds_checkins = True
@@ -41,13 +47,18 @@ class Lottery(SelectionPolicy):
     def __init__(self, window: float = 20.0):
         self.window_s = float(window)
 
+    @staticmethod
+    def _keys(candidates: Candidates, round: RoundView, rng: np.random.Generator) -> np.ndarray:
+        keys = candidates.keyed(since_s=round.now_s)
+        return rng.random(len(candidates)) if keys is None else keys
+
     def rank(self, candidates: Candidates, round: RoundView, rng: np.random.Generator) -> np.ndarray:
         # A uniformly random order: the first `needed` eligible in it are a uniform draw.
-        return rng.random(len(candidates))
+        return self._keys(candidates, round, rng)
 
     def choose(self, candidates: Candidates, round: RoundView, rng: np.random.Generator) -> np.ndarray:
         take = min(round.needed, len(candidates))
-        return np.sort(rng.choice(len(candidates), size=take, replace=False))
+        return np.sort(np.argsort(self._keys(candidates, round, rng), kind="stable")[:take])
 
 
 class QuickFinish(SelectionPolicy):
