@@ -147,29 +147,34 @@ class ReplaySignals(SignalState):
         # Each line's intervals are a slice of the sorted arrays: offsets[line] to offsets[line + 1].
         self._offsets = np.searchsorted(replay.line, np.arange(lines + 1), side="left")
         self._bound_time = np.stack([replay.start, replay.end], axis=1).reshape(-1)
+        # Per line and query kind, the answer of the line's last query: simulated time mostly
+        # moves forward, so the next answer is usually the same entry or the next.
+        self._last = {key: self._offsets[:-1] * (2 if key != "on" else 1) for key in ("on", "from", "to")}
 
-    def _count(self, values: np.ndarray, scale: int, line: np.ndarray, t: np.ndarray) -> np.ndarray:
+    def _count(self, values: np.ndarray, scale: int, line: np.ndarray, t: np.ndarray, last: str) -> np.ndarray:
         """For each query, the index (into ``values``, the line's entries from ``offsets[line] x
-        scale``) of its line's first entry after ``t``: a binary search within the line's own
-        slice, a few steps for lines of a few dozen intervals."""
+        scale``) of its line's first entry after ``t``. From the line's answer to its last
+        query of kind ``last``: two steps back or ahead settle most queries (time moves on a
+        little between looks); the rest get a binary search within the line's own slice."""
         lo = self._offsets[line] * scale
         hi = self._offsets[line + 1] * scale
-        while True:
-            open_ = lo < hi
-            if not open_.any():
-                return lo
-            mid = (lo + hi) // 2
-            at = np.minimum(mid, values.size - 1)
-            right = open_ & (values[at] <= t)
-            lo = np.where(right, mid + 1, lo)
-            hi = np.where(open_ & ~right, mid, hi)
+        top = values.size - 1
+        k = self._last[last][line]
+        for _ in range(2):
+            k = k - ((k > lo) & (values[np.maximum(k - 1, 0)] > t)) + ((k < hi) & (values[np.minimum(k, top)] <= t))
+        back = (k > lo) & (values[np.maximum(k - 1, 0)] > t)
+        far = np.flatnonzero(back | ((k < hi) & (values[np.minimum(k, top)] <= t)))
+        if far.size:
+            k[far] = _search(values, lo[far], hi[far], t[far])
+        self._last[last][line] = k
+        return k
 
     def _on(self, devices: np.ndarray, chain: int, t: np.ndarray) -> np.ndarray:
         if chain == SETTLED or not self.replay.start.size:
             return np.zeros(devices.size, dtype=bool)
         t = np.broadcast_to(np.asarray(t, dtype=float), devices.shape)
         line = devices.astype(np.int64) * _S + (chain - 1)
-        k = self._count(self.replay.start, 1, line, t) - 1
+        k = self._count(self.replay.start, 1, line, t, "on") - 1
         safe = np.maximum(k, 0)
         return (k >= self._offsets[line]) & (self.replay.end[safe] > t)
 
@@ -203,8 +208,8 @@ class ReplaySignals(SignalState):
         for c in np.flatnonzero(followed):
             state0[c] = self._on(devices, int(c), t0)
             line = devices.astype(np.int64) * _S + (int(c) - 1)
-            lo = self._count(self._bound_time, 2, line, t0) if self.replay.start.size else np.zeros(n, np.int64)
-            hi = self._count(self._bound_time, 2, line, np.maximum(t_stop, t0)) if self.replay.start.size else lo
+            lo = self._count(self._bound_time, 2, line, t0, "from") if self.replay.start.size else np.zeros(n, np.int64)
+            hi = self._count(self._bound_time, 2, line, np.maximum(t_stop, t0), "to") if self.replay.start.size else lo
             lows[c], counts[c] = lo, hi - lo
         most = max((int(v.max(initial=0)) for v in counts.values()), default=0)
         flips = np.full((len(CHAINS), n, most), np.inf)
@@ -213,3 +218,17 @@ class ReplaySignals(SignalState):
                 has = counts[c] > j
                 flips[c, has, j] = self._bound_time[lo[has] + j]
         return Paths(t0=t0, state0=state0, flips=flips, t_stop=t_stop, followed=followed)
+
+
+def _search(values: np.ndarray, lo: np.ndarray, hi: np.ndarray, t: np.ndarray) -> np.ndarray:
+    """Per query, the first index in [lo, hi) of sorted ``values`` whose value is above ``t``
+    (``hi`` if none): a binary search of every query's own slice at once."""
+    top = values.size - 1
+    while True:
+        open_ = lo < hi
+        if not open_.any():
+            return lo
+        mid = (lo + hi) // 2
+        right = open_ & (values[np.minimum(mid, top)] <= t)
+        lo = np.where(right, mid + 1, lo)
+        hi = np.where(open_ & ~right, mid, hi)

@@ -144,3 +144,42 @@ def test_the_bridge_keeps_every_logged_state_and_follows_the_bridge_law():
     middle = signals.observe(np.arange(replay.size), 1, np.full(replay.size, 3600.0 + half), None)
     sd = np.sqrt(expected * (1 - expected) / replay.size)
     assert abs(middle.mean() - expected) < 4 * sd, (middle.mean(), expected)
+
+
+def test_replayed_lookups_agree_with_a_search_of_each_line():
+    """The replayed state and the changes a task sees, found by one search over every line's
+    composite keys, against numpy's own searchsorted on each line alone; queries land exactly
+    on interval bounds, between them and outside the logs' span."""
+    rng = np.random.default_rng(7)
+    n, origin = 50, 1.7e9
+    rows = [(f"d{i}", "tablet", "west-europe", "observed", origin, origin + 7 * DAY) for i in range(n)]
+    for i in range(n):
+        for s in SIGNALS:
+            cuts = np.sort(rng.choice(np.arange(1, 7 * 1440), size=2 * rng.integers(0, 30), replace=False)) * 60.0
+            rows += [(f"d{i}", "tablet", "west-europe", s, origin + a, origin + b) for a, b in cuts.reshape(-1, 2)]
+    frame = pd.DataFrame(rows, columns=["device_id", "device_type", "region", "signal", "start_s", "end_s"])
+    replay = replay_from_frame(frame, origin)
+    config = load_config(example_path(), ["fleet.devices=50"])
+    built = build_signal_tables(config, ("tablet",), ("west-europe",), 8 * DAY)
+    tables = dataclasses.replace(built, covers=np.zeros_like(built.covers), has_settled=False)
+    signals = ReplaySignals(tables, np.zeros(n, dtype=np.int64), replay)
+    bounds = np.concatenate([replay.start, replay.end])
+    t = np.concatenate([rng.choice(bounds, 4000), rng.uniform(-DAY, 8 * DAY, 4000)])
+    devices = rng.integers(0, n, t.size)
+    for chain in range(1, len(SIGNALS) + 1):
+        got = signals._on(devices, chain, t)
+        line = devices * len(SIGNALS) + chain - 1
+        want = np.empty(t.size, dtype=bool)
+        for j in range(t.size):
+            sel = replay.line == line[j]
+            k = np.searchsorted(replay.start[sel], t[j], side="right") - 1
+            want[j] = k >= 0 and replay.end[sel][k] > t[j]
+        assert np.array_equal(got, want), chain
+    paths = signals.paths(devices[:500], t[:500], t[:500] + 6 * 3600.0, draws=None)
+    for j in range(500):
+        for chain in range(1, len(SIGNALS) + 1):
+            sel = replay.line == devices[j] * len(SIGNALS) + chain - 1
+            edges = np.stack([replay.start[sel], replay.end[sel]], axis=1).reshape(-1)
+            want = edges[(edges > t[j]) & (edges <= t[j] + 6 * 3600.0)]
+            got = paths.flips[chain, j][np.isfinite(paths.flips[chain, j])]
+            assert np.array_equal(got, want), (j, chain)

@@ -130,7 +130,7 @@ def _read_kind(kind: str, sources: list[Source], reference: tuple[pd.DataFrame, 
     blocks += rules.blocks
     reports = _reports(sources, offsets, whole, blocks, list(fields))
     found_devices = _devices(rows, rules.alive) if kind in _WHAT else None
-    return _frame(kind, rows, rules.alive), reports, found_devices
+    return _frame(kind, rows, rules), reports, found_devices
 
 
 def _run_rules(kind: str, rules: Rules, reference: tuple[pd.DataFrame, str] | None) -> None:
@@ -170,7 +170,7 @@ def _combine(kind: str, descriptor: dict[str, Any], parts: list, where) -> Rows:
             for columns, keep, _ in parts:
                 if name in columns:
                     remap = np.searchsorted(words, columns[name].categories)
-                    pieces.append(remap[columns[name].values[keep]])
+                    pieces.append(remap[_kept(columns[name].values, keep)])
                 else:
                     pieces.append(np.full(keep.size, np.searchsorted(words, ""), dtype=np.int64))
             categories[name] = words
@@ -178,14 +178,22 @@ def _combine(kind: str, descriptor: dict[str, Any], parts: list, where) -> Rows:
             for columns, keep, _ in parts:
                 column = columns.get(name)
                 if field["type"] in ("number", "integer"):
-                    data = np.full(keep.size, np.nan) if column is None else np.where(
-                        column.missing[keep], np.nan, column.values[keep].astype(np.float64))
+                    if column is None:
+                        data = np.full(keep.size, np.nan)
+                    else:
+                        data = _kept(column.values, keep).astype(np.float64)
+                        data[_kept(column.missing, keep)] = np.nan
                 else:
-                    data = column.values[keep]
+                    data = _kept(column.values, keep)
                 pieces.append(data)
         values[name] = np.concatenate(pieces) if pieces else np.zeros(0)
     ids = np.concatenate([i for _, _, i in parts]) if parts else np.zeros(0, dtype=np.int64)
     return Rows(kind, ids, values, categories, where)
+
+
+def _kept(values: np.ndarray, keep: np.ndarray) -> np.ndarray:
+    """``values[keep]``, without the copy when every row is kept (``keep`` is then 0..n-1)."""
+    return values if keep.size == values.size else values[keep]
 
 
 def _devices(rows: Rows, alive: np.ndarray) -> pd.DataFrame | None:
@@ -199,16 +207,11 @@ def _devices(rows: Rows, alive: np.ndarray) -> pd.DataFrame | None:
     return pd.DataFrame(data, index=pd.Index(rows.categories["device_id"][codes], name="device_id"))
 
 
-def _frame(kind: str, rows: Rows, alive: np.ndarray) -> pd.DataFrame:
+def _frame(kind: str, rows: Rows, rules: Rules) -> pd.DataFrame:
     """The kept rows in the in-memory shape, sorted as :data:`SORT` says."""
-    live = np.flatnonzero(alive)
-    if not live.size or not rows.values:
+    if not rules.alive.any() or not rows.values:
         return empty_frame(kind)
-    keys = []
-    for name in SORT[kind]:
-        column = name[:-2] if name.endswith("_s") else name
-        keys.append(rows.codes_of(column, CATEGORIES[column]) if column in CATEGORIES else rows.values[column])
-    order = live[np.lexsort([k[live] for k in keys[::-1]])]
+    order = rules.sorted_live(tuple(name[:-2] if name.endswith("_s") else name for name in SORT[kind]))
     data: dict[str, Any] = {}
     empty = empty_frame(kind)
     for field in COLUMNS[kind]:

@@ -17,6 +17,7 @@ import numpy as np
 import pandas as pd
 
 from .cells import format_times
+from .frames import CATEGORIES
 from .schemas import SIGNAL_VALUES
 from .validate import Block, shown
 
@@ -24,6 +25,8 @@ __all__ = ["Rows", "Rules", "zone_problem"]
 
 _ZONE_RE = re.compile(r"[A-Za-z0-9_+-]{1,40}(/[A-Za-z0-9_+-]{1,40}){0,3}")
 OBSERVED = SIGNAL_VALUES.index("observed")
+_LINE = ("device_id", "signal", "start")
+"""The order of interval rows the rules share: device, signal, start (the in-memory order)."""
 
 
 def zone_problem(name: str) -> str | None:
@@ -65,9 +68,32 @@ class Rules:
     rows: Rows
     alive: np.ndarray = field(init=False)
     blocks: list[Block] = field(default_factory=list)
+    _orders: dict[tuple[str, ...], np.ndarray] = field(default_factory=dict, init=False)
 
     def __post_init__(self) -> None:
         self.alive = np.ones(self.rows.ids.size, dtype=bool)
+
+    def key(self, column: str) -> np.ndarray:
+        """The values a column sorts by: a Categorical column's codes in its categories' order."""
+        if column in CATEGORIES:
+            return self.rows.codes_of(column, CATEGORIES[column])
+        return self.rows.values[column]
+
+    def sorted_live(self, columns: tuple[str, ...]) -> np.ndarray:
+        """The rows still alive in the order of ``columns`` (ties in file order).
+
+        Sorted once per key (not at all when the rows already come in that order, as files
+        written in the in-memory order do) and narrowed to the live rows as rules refuse
+        some: a subset of a sorted sequence is still sorted."""
+        known = self._orders.get(columns)
+        if known is None:
+            live = np.flatnonzero(self.alive)
+            keys = [self.key(c)[live] for c in columns]
+            known = live if _in_order(keys) else live[np.lexsort(keys[::-1])]
+        else:
+            known = known[self.alive[known]]
+        self._orders[columns] = known
+        return known
 
     def refuse(self, positions: np.ndarray, column: str, reasons: str | list[str]) -> None:
         if positions.size:
@@ -80,11 +106,9 @@ class Rules:
 
     def unique(self, columns: list[str], label: str) -> None:
         """Rows whose values of ``columns`` repeat an earlier row's (the later ones are refused)."""
-        live = np.flatnonzero(self.alive)
-        if live.size < 2:
+        order = self.sorted_live(tuple(columns))  # stable: equal keys stay in file order
+        if order.size < 2:
             return
-        keys = [self.rows.values[c][live] for c in columns]
-        order = live[np.lexsort(keys[::-1])]  # stable: equal keys stay in file order
         same = np.ones(order.size - 1, dtype=bool)
         for c in columns:
             v = self.rows.values[c][order]
@@ -144,35 +168,34 @@ class Rules:
 
     def no_overlap(self) -> None:
         """Rows of one device and signal must not overlap (each is refused against the earlier one it overlaps)."""
-        live = np.flatnonzero(self.alive)
-        device, signal = self.rows.values["device_id"][live], self.rows.values["signal"][live]
-        start, end = self.rows.values["start"][live], self.rows.values["end"][live]
-        order = np.lexsort([start, signal, device])  # stable: ties in file order
-        line = device[order] * len(self.rows.categories["signal"]) + signal[order]
-        s, e = start[order], end[order]
+        order = self.sorted_live(_LINE)  # stable: ties in file order
+        if not order.size:
+            return
+        values = self.rows.values
+        line = values["device_id"][order] * len(self.rows.categories["signal"]) + values["signal"][order]
+        s, e = values["start"][order], values["end"][order]
         reach = pd.Series(e).groupby(line).cummax().to_numpy()
         first = np.concatenate([[True], line[1:] != line[:-1]])
         record = np.maximum.accumulate(np.where(first | (e == reach), np.arange(order.size), 0))
         previous = np.concatenate([[0], reach[:-1]])
         overlaps = np.flatnonzero(~first & (s < previous))
-        bad, against = live[order[overlaps]], live[order[record[overlaps - 1]]]
+        bad, against = order[overlaps], order[record[overlaps - 1]]
         self.refuse(bad, "start", [f"overlaps {w} (same device and signal)" for w in self._other(bad, against)])
 
     def inside_observed(self) -> None:
         """Every signal row must lie within one of its device's observed intervals."""
-        live = np.flatnonzero(self.alive)
-        signal = self.rows.codes_of("signal", SIGNAL_VALUES)[live]
-        device, start, end = (self.rows.values[c][live] for c in ("device_id", "start", "end"))
+        order = self.sorted_live(_LINE)
+        if not order.size:
+            return
+        signal = self.key("signal")[order]
+        device, start, end = (self.rows.values[c][order] for c in ("device_id", "start", "end"))
         observed = signal == OBSERVED
-        # Observed rows sort before signal rows that start with them; each signal row then
-        # meets the latest observed row of its device starting at or before it.
-        order = np.lexsort([~observed, start, device])
-        position = np.arange(order.size)
-        last = np.maximum.accumulate(np.where(observed[order], position, -1))
-        holder = order[np.maximum(last, 0)]
-        inside = (last >= 0) & (device[holder] == device[order]) & (end[holder] >= end[order])
-        bad = live[order[~observed[order] & ~inside]]
-        self.refuse(bad, "signal", "lies outside every observed interval of its device")
+        # In this order a device's observed rows are sorted by start; each signal row meets
+        # the latest of them starting at or before it (observed first on a tie).
+        rows = np.flatnonzero(~observed)
+        holder = _latest_at_or_before(device[observed], start[observed], device[rows], start[rows])
+        inside = (holder >= 0) & (end[observed][np.maximum(holder, 0)] >= end[rows])
+        self.refuse(order[rows[~inside]], "signal", "lies outside every observed interval of its device")
 
     def times_increase(self) -> None:
         """A device's snapshot times must strictly increase in file order."""
@@ -187,3 +210,31 @@ class Rules:
                                   zip(format_times(self.rows.values["time"][bad]),
                                       format_times(self.rows.values["time"][before]), self._other(bad, before),
                                       strict=True)])
+
+
+def _in_order(keys: list[np.ndarray]) -> bool:
+    """Whether rows already come in the lexicographic order of ``keys`` (first key first)."""
+    if keys[0].size < 2:
+        return True
+    ahead = np.zeros(keys[0].size - 1, dtype=bool)
+    tied = np.ones(keys[0].size - 1, dtype=bool)
+    for k in keys:
+        ahead |= tied & (k[1:] > k[:-1])
+        tied &= k[1:] == k[:-1]
+    return bool((ahead | tied).all())
+
+
+def _latest_at_or_before(group: np.ndarray, start: np.ndarray, at_group: np.ndarray, at: np.ndarray) -> np.ndarray:
+    """For each query (``at_group``, ``at``), the index of the last row of ``group`` (sorted,
+    ``start`` sorted within each group) in the same group with ``start <= at``, or -1: a
+    binary search within each query's own group, vectorised over the queries."""
+    first = np.searchsorted(group, at_group, side="left")
+    lo, hi = first.copy(), np.searchsorted(group, at_group, side="right")
+    active = np.flatnonzero(lo < hi)
+    while active.size:
+        mid = (lo[active] + hi[active]) // 2
+        right = start[mid] <= at[active]
+        lo[active[right]] = mid[right] + 1
+        hi[active[~right]] = mid[~right]
+        active = active[lo[active] < hi[active]]
+    return np.where(lo > first, lo - 1, -1)
