@@ -153,19 +153,21 @@ class ReplaySignals(SignalState):
 
     def _count(self, values: np.ndarray, scale: int, line: np.ndarray, t: np.ndarray, last: str) -> np.ndarray:
         """For each query, the index (into ``values``, the line's entries from ``offsets[line] x
-        scale``) of its line's first entry after ``t``. From the line's answer to its last
-        query of kind ``last``: two steps back or ahead settle most queries (time moves on a
-        little between looks); the rest get a binary search within the line's own slice."""
+        scale``) of its line's first entry after ``t``. Most queries have the answer of the
+        line's last query of kind ``last`` (time moves on a little between looks), or the next
+        entry; the rest get a binary search within the line's own slice."""
         lo = self._offsets[line] * scale
         hi = self._offsets[line + 1] * scale
-        top = values.size - 1
         k = self._last[last][line]
-        for _ in range(2):
-            k = k - ((k > lo) & (values[np.maximum(k - 1, 0)] > t)) + ((k < hi) & (values[np.minimum(k, top)] <= t))
-        back = (k > lo) & (values[np.maximum(k - 1, 0)] > t)
-        far = np.flatnonzero(back | ((k < hi) & (values[np.minimum(k, top)] <= t)))
-        if far.size:
-            k[far] = _search(values, lo[far], hi[far], t[far])
+        for _ in range(2):  # the last answer, then one step from it
+            wrong = _wrong(values, lo, hi, k, t)
+            if not wrong.any():
+                break
+            k = k + wrong
+        else:
+            far = np.flatnonzero(_wrong(values, lo, hi, k, t))
+            if far.size:
+                k[far] = _search(values, lo[far], hi[far], t[far])
         self._last[last][line] = k
         return k
 
@@ -218,6 +220,13 @@ class ReplaySignals(SignalState):
                 has = counts[c] > j
                 flips[c, has, j] = self._bound_time[lo[has] + j]
         return Paths(t0=t0, state0=state0, flips=flips, t_stop=t_stop, followed=followed)
+
+
+def _wrong(values: np.ndarray, lo: np.ndarray, hi: np.ndarray, k: np.ndarray, t: np.ndarray) -> np.ndarray:
+    """Per query, -1 where the answer lies before ``k``, +1 where after, 0 where ``k`` is it."""
+    top = values.size - 1
+    back = (k > lo) & (values[np.maximum(k - 1, 0)] > t)
+    return ((k < hi) & (values[np.minimum(k, top)] <= t)).astype(np.int64) - back
 
 
 def _search(values: np.ndarray, lo: np.ndarray, hi: np.ndarray, t: np.ndarray) -> np.ndarray:

@@ -427,3 +427,41 @@ def test_the_command_writes_a_marked_folder_all_or_nothing(tmp_path):
         failed = CliRunner().invoke(_app(), ["telemetry", "--out", str(tmp_path / "new")] + bad)
         assert failed.exit_code == 2 and failed.output.startswith(line), failed.output
         assert len(failed.output.strip().splitlines()) == 1 and not (tmp_path / "new").exists()
+
+
+def test_dictionary_encoded_text_reads_as_plain_text():
+    """Parquet text read as a dictionary (as the reader asks) gives the same codes, words and
+    missing rows as the same column decoded: nulls, the schema's missing values, a CSV
+    formula escape (Arrow's dictionary_encode is the reference encoding)."""
+    from fleetsim.telemetry.cells import parse_column
+    from fleetsim.telemetry.schemas import schema
+
+    descriptor = schema("intervals")
+    field = next(f for f in descriptor["fields"] if f["name"] == "device_type")
+    missing = descriptor.get("missingValues", [""])
+    words = ["tablet", None, "", "'=sum", "budget-phone", "tablet", None, "midrange-phone", ""] * 3
+    plain = pa.array(words, type=pa.string())
+    chunked = pa.chunked_array([plain[:10].dictionary_encode(), plain[10:].dictionary_encode()])
+    for unescape in (False, True):
+        want = parse_column(plain, field, missing, unescape=unescape)
+        got = parse_column(chunked, field, missing, unescape=unescape)
+        assert list(got.categories) == list(want.categories)
+        assert np.array_equal(got.values, want.values)
+        assert np.array_equal(got.missing, want.missing) and got.missing.sum() == 12  # 2 nulls, 2 empty, x 3
+
+
+def test_the_observed_interval_holding_a_row_is_the_latest_that_starts_at_or_before_it():
+    """The vectorised search behind the observed-interval rule against a plain search of each
+    group (numpy's searchsorted on the group alone): groups of one row, several, none."""
+    from fleetsim.telemetry.rules import _latest_at_or_before
+
+    rng = np.random.default_rng(3)
+    group = np.sort(rng.choice(np.arange(200), 300))
+    start = np.concatenate([np.sort(rng.integers(0, 50, (group == g).sum())) for g in np.unique(group)]).astype(float)
+    at_group = np.sort(rng.integers(-1, 201, 2000))
+    at = rng.integers(-5, 55, at_group.size).astype(float)
+    got = _latest_at_or_before(group, start, at_group, at)
+    for j in range(at.size):
+        rows = np.flatnonzero(group == at_group[j])
+        k = np.searchsorted(start[rows], at[j], side="right") - 1
+        assert got[j] == (rows[k] if k >= 0 else -1), j

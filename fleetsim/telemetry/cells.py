@@ -119,6 +119,24 @@ def _strings(array: pa.Array, unescape: bool) -> tuple[np.ndarray, np.ndarray]:
     return categories, codes
 
 
+def _dictionary_strings(array: pa.DictionaryArray, missing_values: list[str],
+                        unescape: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`_strings` and the missing mask of a dictionary-encoded text column (as Parquet
+    stores text), from its dictionary and indices without decoding a string per row."""
+    dictionary = _as_string(array.dictionary)
+    word_missing = _mask(pc.is_null(dictionary))
+    if missing_values:
+        word_missing |= _mask(pc.is_in(dictionary, value_set=pa.array(missing_values, type=dictionary.type)))
+    words = pc.fill_null(dictionary, "").to_pylist()
+    words = np.asarray([_unescaped(w) for w in words] if unescape else words, dtype=object)
+    categories, remap = np.unique(np.append(words, ""), return_inverse=True)
+    null = _mask(pc.is_null(array.indices))
+    index = np.asarray(pc.fill_null(array.indices, 0).to_numpy(zero_copy_only=False), dtype=np.int64)
+    codes = remap[index]
+    codes[null] = remap[-1]  # a null row reads as ''
+    return categories, codes, null | word_missing[index]
+
+
 def _fixed_width(array: pa.Array, rows: np.ndarray, width: int) -> np.ndarray:
     """The bytes of the strings at ``rows`` (all ``width`` long) as a [rows, width] uint8 matrix
     (a view of the column's data when every row has this width)."""
@@ -251,6 +269,9 @@ def parse_column(array: pa.Array | pa.ChunkedArray, field: dict[str, Any], missi
     if isinstance(array, pa.ChunkedArray):
         array = array.combine_chunks() if array.num_chunks != 1 else array.chunk(0)
     name, kind = field["name"], field["type"]
+    if kind == "string" and pa.types.is_dictionary(array.type) and _is_text(array):
+        categories, codes, missing = _dictionary_strings(array, missing_values, unescape)
+        return Column(name, kind, codes, missing, np.zeros(len(array), dtype=bool), categories=categories)
     text = _is_text(array)
     if text:
         array = _as_string(array)

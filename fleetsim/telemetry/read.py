@@ -170,7 +170,9 @@ def _combine(kind: str, descriptor: dict[str, Any], parts: list, where) -> Rows:
             for columns, keep, _ in parts:
                 if name in columns:
                     remap = np.searchsorted(words, columns[name].categories)
-                    pieces.append(remap[_kept(columns[name].values, keep)])
+                    codes = _kept(columns[name].values, keep)
+                    same = remap.size == words.size  # the file's words are all the words: codes stand
+                    pieces.append(codes if same else remap[codes])
                 else:
                     pieces.append(np.full(keep.size, np.searchsorted(words, ""), dtype=np.int64))
             categories[name] = words
@@ -186,7 +188,7 @@ def _combine(kind: str, descriptor: dict[str, Any], parts: list, where) -> Rows:
                 else:
                     data = _kept(column.values, keep)
                 pieces.append(data)
-        values[name] = np.concatenate(pieces) if pieces else np.zeros(0)
+        values[name] = (pieces[0] if len(pieces) == 1 else np.concatenate(pieces)) if pieces else np.zeros(0)
     ids = np.concatenate([i for _, _, i in parts]) if parts else np.zeros(0, dtype=np.int64)
     return Rows(kind, ids, values, categories, where)
 

@@ -230,6 +230,10 @@ def _latest_at_or_before(group: np.ndarray, start: np.ndarray, at_group: np.ndar
     binary search within each query's own group, vectorised over the queries."""
     first = np.searchsorted(group, at_group, side="left")
     lo, hi = first.copy(), np.searchsorted(group, at_group, side="right")
+    # A group of one row (a device observed once, the common case) needs no search.
+    single = np.flatnonzero(hi - lo == 1)
+    lo[single] += start[first[single]] <= at[single]
+    hi[single] = lo[single]
     active = np.flatnonzero(lo < hi)
     while active.size:
         mid = (lo[active] + hi[active]) // 2

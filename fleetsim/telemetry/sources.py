@@ -19,7 +19,7 @@ import pyarrow as pa
 import pyarrow.csv as pacsv
 
 from ..errors import TelemetryError
-from .schemas import KINDS
+from .schemas import KINDS, schema
 
 __all__ = ["Source", "find_sources", "kind_of", "load"]
 
@@ -151,7 +151,10 @@ def load(source: Source) -> Source:
         else:
             import pyarrow.parquet as pq
 
-            source.table = pq.read_table(source.path)
+            # Text columns of the format read as dictionaries: each distinct word decoded once.
+            text = [f["name"] for f in schema(source.kind)["fields"] if f["type"] == "string"]
+            present = set(pq.read_schema(source.path).names)
+            source.table = pq.read_table(source.path, read_dictionary=[n for n in text if n in present])
     except (OSError, pa.ArrowException) as exc:
         kind = "CSV" if source.path.suffix.lower() == ".csv" else "Parquet"
         reason = " ".join((getattr(exc, "strerror", None) or str(exc) or type(exc).__name__).split())
