@@ -147,9 +147,12 @@ def _show(value: float) -> str:
 
 def signal_patterns(
     estimates: pd.DataFrame, tname: str, rname: str, base: tuple[str, ...], settled: bool, collect: Collector,
+    joint: bool = False,
 ) -> dict[str, Any]:
     """The ``signals`` (and ``settled``, if ``settled``) entries of one (type, region), with
-    their rows and comments under the key path ``base``."""
+    their rows and comments under the key path ``base``. With ``joint`` the ``settled`` rows
+    are the settled chain's own fit (from snapshots, :mod:`fleetsim.fit.joint`), written as
+    they are; else the all-on state's, converted as the module doc says."""
     part = estimates[(estimates["device_type"] == tname) & (estimates["region"] == rname)]
     chains = {c: rows.sort_values(["day", "hour"]) for c, rows in part.groupby("chain", sort=True)}
     p = {c: _grid(chains[c], "p") for c in SIGNALS}
@@ -160,11 +163,16 @@ def signal_patterns(
                                      p_values=np.round(p[s], _DIGITS))
     if settled:
         table = chains["settled"]
-        x = {col: settled_probability(_grid(table, col), [p[s] for s in SIGNALS]) for col in ("p", "p_low", "p_high")}
-        own_d = [_grid(chains.get(f"own-{s}", chains[s]), "d") for s in SIGNALS]
-        all_on = _grid(table, "p")
-        d = {col: settled_duration(1.0 / _grid(table, col), x["p"], all_on, [p[s] for s in SIGNALS], own_d)
-             for col in ("d", "d_low", "d_high")}
+        if joint:
+            x = {col: _grid(table, col) for col in ("p", "p_low", "p_high")}
+            d = {col: _grid(table, col) for col in ("d", "d_low", "d_high")}
+        else:
+            x = {col: settled_probability(_grid(table, col), [p[s] for s in SIGNALS])
+                 for col in ("p", "p_low", "p_high")}
+            own_d = [_grid(chains.get(f"own-{s}", chains[s]), "d") for s in SIGNALS]
+            all_on = _grid(table, "p")
+            d = {col: settled_duration(1.0 / _grid(table, col), x["p"], all_on, [p[s] for s in SIGNALS], own_d)
+                 for col in ("d", "d_low", "d_high")}
         # floor the rounding: the settled state must stay within every signal it holds on
         fixed = np.floor(np.minimum(x["p"], np.min([np.round(p[s], _DIGITS) for s in SIGNALS], axis=0))
                          * 10**_DIGITS) / 10**_DIGITS

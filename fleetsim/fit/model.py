@@ -26,7 +26,7 @@ from ..errors import ConfigError, FleetsimError
 from .fleetfile import MIN_SETTLED, Collector, settled_probability, signal_patterns, weekend_names
 from .mix import TRAIT_COLUMNS, battery_laws, device_table, fleet_mix, trait_laws
 from .rates import estimate_rates
-from .snapshots import fit_snapshots, snapshot_occupancy
+from .snapshots import fit_snapshots
 from .stats import DEFAULT_WEEKEND, interval_statistics, region_zones
 
 __all__ = ["FitResult", "fit_fleet", "COPIED_SECTIONS"]
@@ -105,9 +105,11 @@ def _battery(kind: dict[str, Any], tname: str, laws: dict, path: tuple[str, ...]
         collect.scalar(path + ("battery_level", state, "sd"), sd, sd_low, sd_high, n, "%", "snapshots")
 
 
-def _signal_estimates(intervals, snapshots, weekend_days, on_progress) -> tuple[pd.DataFrame, pd.DataFrame, list[str],
-                                                                               str]:
-    """Estimates of every chain, each chain's on-share per cell, warnings, and the source."""
+def _signal_estimates(intervals, snapshots, weekend_days, on_progress) -> tuple[pd.DataFrame, pd.DataFrame | None,
+                                                                               list[str], str]:
+    """Estimates of every chain, each chain's on-share per cell (interval logs only: from
+    snapshots the settled state is decided by :func:`fleetsim.fit.snapshots.fit_snapshots`),
+    warnings, and the source."""
     if intervals is not None and len(intervals):
         statistics = interval_statistics(intervals, weekend_days)
         estimates, warnings = estimate_rates(statistics)
@@ -120,7 +122,7 @@ def _signal_estimates(intervals, snapshots, weekend_days, on_progress) -> tuple[
     if snapshots is None or not len(snapshots):
         raise FleetsimError("no interval logs and no snapshots: nothing to fit the signals from")
     estimates, warnings = fit_snapshots(snapshots, weekend_days, on_progress=on_progress)
-    return estimates, snapshot_occupancy(snapshots, weekend_days), warnings, "snapshots"
+    return estimates, None, warnings, "snapshots"
 
 
 def _settled_types(occupancy: pd.DataFrame) -> set[str]:
@@ -152,7 +154,8 @@ def fit_fleet(
                          "logs")
     estimates, occupancy, warnings, source = _signal_estimates(intervals, snapshots, weekend_days, on_progress)
     mix = fleet_mix(table)
-    settled = _settled_types(occupancy)
+    joint = source == "snapshots"  # the settled chain fitted with the others, and kept by a test
+    settled = set(estimates.loc[estimates["chain"] == "settled", "device_type"]) if joint else _settled_types(occupancy)
     collect = Collector()
     fleet_types: dict[str, Any] = {}
     counts = mix["counts"]
@@ -171,8 +174,8 @@ def fit_fleet(
                                 f"the {'snapshots' if source == 'intervals' else 'interval logs'}); try "
                                 f"--signals-from {'snapshots' if source == 'intervals' else 'intervals'}")
         home = max(seen, key=lambda r: (counts.loc[tname, r], r))
-        kind.update(signal_patterns(estimates, tname, home, path, tname in settled, collect))
-        others = {r: signal_patterns(estimates, tname, r, path + ("by_region", r), tname in settled, collect)
+        kind.update(signal_patterns(estimates, tname, home, path, tname in settled, collect, joint))
+        others = {r: signal_patterns(estimates, tname, r, path + ("by_region", r), tname in settled, collect, joint)
                   for r in seen if r != home}
         if others:
             kind["by_region"] = others
