@@ -130,8 +130,13 @@ def _dictionary_strings(array: pa.DictionaryArray, missing_values: list[str],
     words = pc.fill_null(dictionary, "").to_pylist()
     words = np.asarray([_unescaped(w) for w in words] if unescape else words, dtype=object)
     categories, remap = np.unique(np.append(words, ""), return_inverse=True)
-    null = _mask(pc.is_null(array.indices))
-    index = np.asarray(pc.fill_null(array.indices, 0).to_numpy(zero_copy_only=False), dtype=np.int64)
+    indices = array.indices
+    if not indices.null_count:  # the common case: no per-row masks to build
+        index = indices.to_numpy(zero_copy_only=False)
+        missing = word_missing[index] if word_missing.any() else np.zeros(len(array), dtype=bool)
+        return categories, remap[index], missing
+    null = _mask(pc.is_null(indices))
+    index = pc.fill_null(indices, 0).to_numpy(zero_copy_only=False)
     codes = remap[index]
     codes[null] = remap[-1]  # a null row reads as ''
     return categories, codes, null | word_missing[index]
