@@ -19,7 +19,8 @@ from scipy import linalg, optimize, special
 import fleetsim
 from fleetsim.config import build_config, example_path, read_yaml
 from fleetsim.fit.gapclasses import class_hessian, class_loglik, gap_classes, gap_geometry, pair_weights
-from fleetsim.fit.information import wald_intervals
+from fleetsim.fit.information import observed_information, wald_intervals
+from fleetsim.fit.joint import joint_loglik
 from fleetsim.fit.snapshots import (
     MAX_GAP_S,
     MIN_CHANGES,
@@ -260,3 +261,19 @@ def test_settled_state_test_keeps_none_for_independent_signals(seed):
     decision = [w for w in warnings if "settled state: likelihood ratio" in w]
     assert len(decision) == 1 and decision[0].startswith("tablet: no settled state"), decision
     assert set(est["chain"]) == {"idle", "charging", "unmetered"}
+
+
+def test_observed_information_is_the_hessian_of_the_exact_likelihood():
+    """The joint model's observed information (a block per chain, and the segments' part from
+    one copy of a segment per input it moves) against central differences of the exact
+    gradient of the joint log-likelihood, every parameter shifted over every gap and segment."""
+    config = _one_group_fleet("budget-phone", 40)
+    snap = generate_telemetry(config, 5, snapshots_every=3600.0).snapshots
+    zone = snap["timezone"].iloc[0]
+    calendar = lambda k0, k1: (lambda h, w: w * 24 + h)(*step_calendar(zone, frozenset({6, 7}), k0, k1))  # noqa: E731
+    fit = _fit_group(snap.sort_values(["device_id", "time_s"], kind="stable"), calendar, 40)
+    model, theta = fit["model"], fit["theta"]
+    assert model["layout"]["prior"].size and theta.size <= 120, theta.size
+    full = -_hessian(lambda t: joint_loglik(t, model)[1], theta, step=1e-5)
+    info = observed_information(theta, model)
+    assert np.allclose(info, full, rtol=1e-4, atol=1e-5 * np.abs(full).max()), np.abs(info - full).max()

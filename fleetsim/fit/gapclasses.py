@@ -208,13 +208,14 @@ def class_maps(p: np.ndarray, d: np.ndarray, classes: dict) -> dict:
     c0, c1, h0, h1 = classes["cell0"], classes["cell1"], classes["h0"], classes["h1"]
     p0, p1 = p[:, c0], p[:, c1]
     e0, e1 = np.exp(-lam[:, c0] * h0), np.exp(-lam[:, c1] * h1)
-    Am, Bm = A[:, pat, m], B[:, pat, m]
+    entry = pat * A.shape[2] + m  # one gather from the flat table (faster than indexing two axes)
+    Am, Bm = A.reshape(rows, -1)[:, entry], B.reshape(rows, -1)[:, entry]
     start = p0 * (1.0 - e0)  # after the first piece, from off
     qm = Am * start + Bm
     q0 = p1 + (qm - p1) * e1
     q1 = q0 + e1 * Am * e0
     return {"rows": rows, "p": p, "d": d, "lam": lam, "a": a, "ps": ps, "A": A, "B": B, "p0": p0, "p1": p1,
-            "e0": e0, "e1": e1, "Am": Am, "start": start, "qm": qm, "classes": classes,
+            "e0": e0, "e1": e1, "Am": Am, "entry": entry, "start": start, "qm": qm, "classes": classes,
             "q0": np.clip(q0, 1e-12, 1.0 - 1e-12), "q1": np.clip(q1, 1e-12, 1.0 - 1e-12)}
 
 
@@ -225,7 +226,7 @@ def class_map_gradient(maps: dict, g0: np.ndarray, g1: np.ndarray) -> tuple[np.n
     classes, rows = maps["classes"], maps["rows"]
     p, lam, a, ps, A, B = maps["p"], maps["lam"], maps["a"], maps["ps"], maps["A"], maps["B"]
     c0, c1, h0, h1 = classes["cell0"], classes["cell1"], classes["h0"], classes["h1"]
-    table, pat, m = classes["table"], classes["pattern"], classes["m"]
+    table = classes["table"]
     p0, p1, e0, e1, Am = maps["p0"], maps["p1"], maps["e0"], maps["e1"], maps["Am"]
     g = g0 + g1  # the map from off gets g0 and from on g1: the terms linear in the start state take g1 alone
     gqm, gx = g * e1, g1 * e1 * Am
@@ -233,7 +234,7 @@ def class_map_gradient(maps: dict, g0: np.ndarray, g1: np.ndarray) -> tuple[np.n
     grad_l = (_cell_sum(c1, -(g * (maps["qm"] - p1) + g1 * Am * e0) * h1 * e1, rows)
               + _cell_sum(c0, -(gx - gqm * Am * p0) * h0 * e0, rows))
     width = table.shape[1]
-    entry = pat * (width + 1) + m
+    entry = maps["entry"]
     size = A.shape[1] * (width + 1)
     flat = (np.arange(rows)[:, None] * size + entry).ravel()
     dA = np.bincount(flat, (gqm * maps["start"] + g1 * e1 * e0).ravel(), rows * size).reshape(A.shape)
