@@ -39,7 +39,7 @@ def main() -> None:
             calls = {"n": 0}
             original = policy_module.make_policy
 
-            def counting(*a, **k):
+            def counting(*a, original=original, calls=calls, **k):
                 policy = original(*a, **k)
                 inner = policy.choose
 

@@ -49,7 +49,8 @@ CLI_TINY = [arg for item in TINY for arg in ("--set", item)]
 SEEDS = [0, 1]
 TYPING_TARGETS = (8, 16)
 NAMES = ("ranking", "typing")
-HEADER = {"scenario", "fleet_file", "seed", "config_hash", "policy", "devices", "horizon_start", "simulated_hours", "replay"}
+HEADER = {"scenario", "fleet_file", "seed", "config_hash", "policy", "devices", "horizon_start", "simulated_hours",
+          "replay"}
 """The header keys of a summary, which a workload's part of a run of several leaves out."""
 
 

@@ -210,7 +210,7 @@ def test_worst_group_names_a_region_whose_devices_are_rarely_eligible():
         flat = flatten_summary(summary)
         groupings = [g for g in ("device_type", "region", "data_quartile", "type_and_region")
                      if f"by_{g}" in summary["bias"]]
-        def groups(g):  # the pairs' map nests type -> region; in text a pair is "type / region"
+        def groups(g, summary=summary):  # the pairs' map nests type -> region; in text a pair is "type / region"
             table = summary["bias"][f"by_{g}"]
             if g == "type_and_region":
                 return [(f"{t} / {r}", v) for t, inner in table.items() for r, v in inner.items()]

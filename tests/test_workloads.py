@@ -122,7 +122,7 @@ def test_selections_never_overlap_and_each_workload_numbers_its_rounds(rivals):
     rounds = rivals.rounds.sort_values("opened_s", kind="stable")
     opened, selected = rounds["opened_s"].to_numpy(), rounds["selected_s"].to_numpy()
     assert np.all(opened[1:] >= selected[:-1] - 1e-9)  # one selection at a time
-    for name, own in rivals.rounds.groupby("workload", observed=True):
+    for _, own in rivals.rounds.groupby("workload", observed=True):
         assert list(own["round"]) == list(range(len(own)))
 
 
