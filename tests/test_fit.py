@@ -416,3 +416,24 @@ def test_command_guards_missing_goodness_and_bad_options(monkeypatch, tmp_path, 
         bad = runner.invoke(app, ["logs.csv", "--out", str(tmp_path / "g.yaml"), *args])
         assert bad.exit_code == 2 and text in bad.output and "Traceback" not in bad.output, bad.output
         assert not (tmp_path / "g.yaml").exists()
+
+
+def test_a_rejection_is_printed_with_the_estimation_noise_note(monkeypatch, tmp_path, tablets):
+    """`fleetsim fit` adds the note that the checks take the fitted values as exact when a check
+    rejects, and only then (the checks are replaced by fixed reports here; their own tests are
+    in tests/test_goodness.py)."""
+    import fleetsim.fit.goodness as goodness
+    from fleetsim.fit.verdicts import Check, GoodnessReport
+
+    _, _, logs = tablets
+    app, runner = _cli(monkeypatch, logs[logs["device_id"] < "tablet-0060"])
+    for verdict, noted in (("rejected", True), ("accepted", False)):
+        check = Check("eligible share by hour (intervals)", 9.0, 4, 0.001, verdict, "")
+        monkeypatch.setattr(goodness, "goodness_of_fit",
+                            lambda *a, check=check, **k: GoodnessReport([check], "verdict line", {}))
+        out = tmp_path / f"{verdict}.yaml"
+        result = runner.invoke(app, ["logs.csv", "--out", str(out)])
+        assert result.exit_code == 0, result.output
+        assert ("note: the checks take the fitted values as exact" in result.output) is noted, result.output
+        side = json.loads((tmp_path / f"{verdict}.yaml.fit.json").read_text())
+        assert any("fitted values as exact" in n for n in side["goodness"]["notes"]) is noted

@@ -131,6 +131,12 @@ def _split(telemetry: Any, fraction: float) -> tuple[dict[str, Any], list[str], 
     return frames, sorted(held_ids), len(table)
 
 
+_ESTIMATION_NOTE = ("the checks take the fitted values as exact, so where cells are thin (few devices per type "
+                    "and region, pooled hours) the fit's own estimation noise can be enough to reject "
+                    "(docs/fit.md, 'Limits'); before reading a rejection as misfit, see whether it stays with more "
+                    "devices or weeks of logs")
+
+
 def _goodness(fleet: dict[str, Any], telemetry: Any, held_out: list[str]) -> tuple[list[str], dict, dict]:
     """The goodness-of-fit report's lines, figures (name -> PNG bytes) and dict, if available."""
     if not held_out:
@@ -142,6 +148,8 @@ def _goodness(fleet: dict[str, Any], telemetry: Any, held_out: list[str]) -> tup
     from ..config import build_config
 
     report = goodness_of_fit(build_config(fleet, source="fitted fleet"), telemetry, held_out)
+    if any(c.verdict == "rejected" for c in report.checks):
+        report.notes.append(_ESTIMATION_NOTE)
     figures = {}
     for name, figure in sorted(report.figures.items()):
         buffer = io.BytesIO()
