@@ -9,8 +9,8 @@ check-in phases, once for the whole fleet in device order), ``pacing`` (each dev
 offset, once), ``census`` (the measurement of eligible devices; it never changes the run)
 and ``policy`` (the ``rng`` a policy's hooks are handed). Keyed (:mod:`fleetsim.keyed`, every
 draw a pure function of the seed, the stream, the device, a check-in tick of the device and
-a lane; :data:`fleetsim.runtime.KEYED_STREAMS`): ``checkin`` (chain states seen at check-ins,
-by the tick looked at), ``battery`` (battery scores at check-in, likewise), ``task`` (chain
+a lane; :data:`fleetsim.runtime.KEYED_STREAMS`): ``checkin`` (chain states and the battery
+score seen at check-ins, by the tick looked at, one lane each), ``task`` (chain
 paths and crashes during a task, by the tick of the check-in that started it) and
 ``policy`` (the built-in ``lottery``'s keys, per device and tick). Two runs of one seed then
 see the same draws for a device wherever the device's own history agrees.
@@ -47,7 +47,7 @@ __all__ = ["Result", "simulate", "STREAMS"]
 MAX_SEED = 2**63 - 1
 """The largest seed (seeds are whole numbers from 0 on)."""
 
-STREAMS = ("fleet", "checkin", "battery", "task", "policy", "census", "pacing")
+STREAMS = ("fleet", "checkin", "task", "policy", "census", "pacing")
 
 CENSUS_EVERY_S = 900.0
 """How often the eligible devices are counted (the counts feed eligible shares and hourly load)."""

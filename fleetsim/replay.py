@@ -25,7 +25,7 @@ from .chains import Draws, Paths, SignalState
 from .config import SIGNALS
 from .signals import CHAINS, SETTLED, SignalTables
 
-__all__ = ["Replay", "ReplaySignals", "replay_from_frame"]
+__all__ = ["Replay", "ReplaySignals", "replay_from_frame", "first_above"]
 
 _S = len(SIGNALS)
 
@@ -167,7 +167,7 @@ class ReplaySignals(SignalState):
         else:
             far = np.flatnonzero(_wrong(values, lo, hi, k, t))
             if far.size:
-                k[far] = _search(values, lo[far], hi[far], t[far])
+                k[far] = first_above(values, lo[far], hi[far], t[far])
         self._last[last][line] = k
         return k
 
@@ -229,7 +229,7 @@ def _wrong(values: np.ndarray, lo: np.ndarray, hi: np.ndarray, k: np.ndarray, t:
     return ((k < hi) & (values[np.minimum(k, top)] <= t)).astype(np.int64) - back
 
 
-def _search(values: np.ndarray, lo: np.ndarray, hi: np.ndarray, t: np.ndarray) -> np.ndarray:
+def first_above(values: np.ndarray, lo: np.ndarray, hi: np.ndarray, t: np.ndarray) -> np.ndarray:
     """Per query, the first index in [lo, hi) of sorted ``values`` whose value is above ``t``
     (``hi`` if none): a binary search of every query's own slice at once."""
     top = values.size - 1

@@ -16,6 +16,7 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 import numpy as np
 import pandas as pd
 
+from ..replay import first_above
 from .cells import format_times
 from .frames import CATEGORIES
 from .schemas import SIGNAL_VALUES
@@ -226,19 +227,13 @@ def _in_order(keys: list[np.ndarray]) -> bool:
 
 def _latest_at_or_before(group: np.ndarray, start: np.ndarray, at_group: np.ndarray, at: np.ndarray) -> np.ndarray:
     """For each query (``at_group``, ``at``), the index of the last row of ``group`` (sorted,
-    ``start`` sorted within each group) in the same group with ``start <= at``, or -1: a
-    binary search within each query's own group, vectorised over the queries."""
+    ``start`` sorted within each group) in the same group with ``start <= at``, or -1: the
+    replay's search within each query's own group (:func:`fleetsim.replay.first_above`)."""
     first = np.searchsorted(group, at_group, side="left")
     lo, hi = first.copy(), np.searchsorted(group, at_group, side="right")
     # A group of one row (a device observed once, the common case) needs no search.
     single = np.flatnonzero(hi - lo == 1)
     lo[single] += start[first[single]] <= at[single]
     hi[single] = lo[single]
-    active = np.flatnonzero(lo < hi)
-    while active.size:
-        mid = (lo[active] + hi[active]) // 2
-        right = start[mid] <= at[active]
-        lo[active[right]] = mid[right] + 1
-        hi[active[~right]] = mid[~right]
-        active = active[lo[active] < hi[active]]
-    return np.where(lo > first, lo - 1, -1)
+    found = first_above(start, lo, hi, at) if start.size else lo
+    return np.where(found > first, found - 1, -1)
