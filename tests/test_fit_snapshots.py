@@ -5,7 +5,7 @@ independently of fleetsim with scipy.linalg.expm, as the product of the two-stat
 transition matrices exp(Q_c h) over the gap's pieces (Q_c the generator with leaving-off rate
 p / ((1 - p) d) and leaving-on rate 1 / d in cell c); the gradient is checked against
 scipy.optimize.approx_fprime; the estimates of the fast path against a maximisation of the
-likelihood over every gap (fleetsim.fit.snapshots.chain_loglik, the per-gap likelihood the
+likelihood over every gap (fleetsim.fit.gapclasses.chain_loglik, the per-gap likelihood the
 fit used before gaps were grouped) by scipy's L-BFGS-B.
 """
 
@@ -18,7 +18,15 @@ from scipy import linalg, optimize, special
 
 import fleetsim
 from fleetsim.config import build_config, example_path, read_yaml
-from fleetsim.fit.gapclasses import class_hessian, class_loglik, gap_classes, gap_geometry, pair_weights
+from fleetsim.fit.gapclasses import (
+    chain_loglik,
+    class_hessian,
+    class_loglik,
+    gap_classes,
+    gap_geometry,
+    gap_layout,
+    pair_weights,
+)
 from fleetsim.fit.information import observed_information, wald_intervals
 from fleetsim.fit.joint import joint_loglik
 from fleetsim.fit.snapshots import (
@@ -28,9 +36,7 @@ from fleetsim.fit.snapshots import (
     _fit_group,
     _fit_signal,
     _ties,
-    chain_loglik,
     fit_snapshots,
-    gap_layout,
     seen_codes,
 )
 from fleetsim.fit.stats import step_calendar

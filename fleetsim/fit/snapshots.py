@@ -38,13 +38,11 @@ import pandas as pd
 from scipy import optimize, special
 
 from ..config import SIGNALS
-from .gapclasses import (  # noqa: F401
-    chain_loglik,
+from .gapclasses import (
     class_hessian,
     class_loglik,
     gap_classes,
     gap_geometry,
-    gap_layout,
     one_blas_thread,
     pair_weights,
     seen_codes,
@@ -54,7 +52,7 @@ from .joint import LOG_D_BOUNDS, bounds, chain_cells, em_fit, joint_loglik, join
 from .rates import ESTIMATE_COLUMNS, LEVEL, hour_ranges
 from .stats import DAY_KINDS, DEFAULT_WEEKEND, region_zones, step_calendar
 
-__all__ = ["MAX_GAP_S", "MIN_CHANGES", "fit_snapshots", "gap_layout", "chain_loglik"]
+__all__ = ["MAX_GAP_S", "MIN_CHANGES", "fit_snapshots"]
 
 MAX_GAP_S = 86400.0
 """Longest gap between two check-ins that is followed; a longer one starts afresh."""
